@@ -58,3 +58,46 @@ def write_bytes(path, data):
     """Write `data` to `path` atomically."""
     with atomic_path(path) as tmp:
         tmp.write_bytes(data)
+
+
+def write_image(path, image, *, bit_depth=8):
+    """Write a float image in [0, 1] (clipped) as an 8- or 16-bit file, atomically.
+
+    Gray ``(h, w)`` and 8-bit RGB ``(h, w, 3)`` images are written as PNG; 16-bit RGB as
+    TIFF (PNG writers at hand keep only 8 bits of colour), so `path` must end in .tif
+    for it. Values are rounded to the nearest integer level: writing what
+    :func:`imgreduce.ingest.read_images` read gives back identical files.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib, numpy as np
+    >>> folder = pathlib.Path(tempfile.mkdtemp())
+    >>> write_image(folder / "a.png", np.linspace(0, 1, 6).reshape(2, 3), bit_depth=16)
+    >>> sorted(p.name for p in folder.iterdir())
+    ['a.png']
+    """
+    import numpy as np
+
+    from .errors import ParameterError
+
+    path = Path(path)
+    if bit_depth not in (8, 16):
+        raise ParameterError(f"bit_depth must be 8 or 16, got {bit_depth!r}")
+    image = np.asarray(image, dtype=np.float64)
+    dtype = np.uint8 if bit_depth == 8 else np.uint16
+    levels = np.rint(np.clip(image, 0.0, 1.0) * (2 ** bit_depth - 1)).astype(dtype)
+    if image.ndim == 3 and bit_depth == 16:
+        if path.suffix.lower() not in (".tif", ".tiff"):
+            raise ParameterError(f"{path.name}: 16-bit colour images are written as TIFF; "
+                                 "use a .tif name")
+        import tifffile
+
+        with atomic_path(path) as tmp:
+            tifffile.imwrite(tmp, levels, photometric="rgb")
+        return
+    from PIL import Image
+
+    if image.ndim not in (2, 3) or (image.ndim == 3 and image.shape[2] != 3):
+        raise ParameterError(f"expected an (h, w) or (h, w, 3) image, got shape {image.shape}")
+    with atomic_path(path, suffix=".png") as tmp:
+        Image.fromarray(levels).save(tmp, format="PNG")
