@@ -1,0 +1,270 @@
+"""The demo scenario: an invented inspection line, generated deterministically.
+
+A fixed overhead camera looks down on a conveyor belt carrying stamped steel mounting
+plates: a rounded rectangle with four corner holes, a central slot and a bend line across
+the plate. Every frame differs a little, as on a real line: sub-pixel placement and a
+slight rotation of the part, a drifting lamp (gain and offset), the belt's texture moving
+underneath, vignetting and sensor noise. A batch from a later shift holds a handful of
+defective parts: scratches, dents, a missing hole, a foreign particle, a blurred frame,
+a part shifted on the belt and a wrong part.
+
+Nothing here is real data. ``demo_images/`` in the repository is exactly what
+:func:`generate_demo_images` writes (a test checks it); run
+``python -m imgreduce.demo --regenerate`` after changing the generator.
+"""
+
+import json
+import sys
+from pathlib import Path
+
+import numpy as np
+
+from ._files import write_image, write_text
+
+__all__ = ["generate_demo_images", "demo_images_path", "run_demo", "GENERATOR_VERSION"]
+
+GENERATOR_VERSION = 1
+SEED = 20261202
+WIDTH, HEIGHT = 128, 96
+# Defective frames of the batch (index -> kind); the rest of the batch is good.
+BATCH_DEFECTS = {4: "scratch", 11: "dent", 17: "missing_hole", 23: "particle",
+                 29: "blur", 34: "shifted", 40: "scratch", 46: "wrong_part", 52: "dent"}
+_HOLES = [(-40.0, -26.0), (40.0, -26.0), (-40.0, 26.0), (40.0, 26.0)]
+_WRONG_HOLES = [(-40.0, -26.0), (40.0, -26.0), (0.0, 26.0), (-20.0, 0.0)]
+
+
+def _soft(distance, edge=0.7):
+    """Anti-aliased inside-ness from a signed distance (negative inside)."""
+    return np.clip(0.5 - distance / edge, 0.0, 1.0)
+
+
+class _Line:
+    """Everything that stays fixed on the line: belt texture, vignetting."""
+
+    def __init__(self, rng):
+        self.belt = rng.normal(0.0, 1.0, (HEIGHT, 4 * WIDTH)).astype(np.float32)
+        from scipy.ndimage import gaussian_filter
+
+        self.belt = gaussian_filter(self.belt, (1.2, 2.5), mode="wrap")
+        self.belt /= self.belt.std()
+        yy, xx = np.mgrid[0:HEIGHT, 0:WIDTH].astype(np.float32)
+        r2 = ((xx - WIDTH / 2) / WIDTH) ** 2 + ((yy - HEIGHT / 2) / HEIGHT) ** 2
+        self.vignette = 1.0 - 0.35 * r2
+        self.yy, self.xx = yy, xx
+
+
+def _render(line, rng, *, holes=_HOLES, dx=0.0, dy=0.0, angle=0.0, gain=1.0, offset=0.0,
+            belt_phase=0, fill_hole=None):
+    """One frame as float32 in [0, 1], before noise and defects; also the plate mask."""
+    cx, cy = WIDTH / 2 + dx, HEIGHT / 2 + dy
+    c, s = np.cos(angle), np.sin(angle)
+    u = c * (line.xx - cx) + s * (line.yy - cy)      # part coordinates
+    v = -s * (line.xx - cx) + c * (line.yy - cy)
+    half_w, half_h, radius = 50.0, 36.0, 8.0
+    qx, qy = np.abs(u) - (half_w - radius), np.abs(v) - (half_h - radius)
+    outside = np.hypot(np.maximum(qx, 0), np.maximum(qy, 0)) + np.minimum(np.maximum(qx, qy), 0)
+    plate = _soft(outside - radius)
+    for i, (hx, hy) in enumerate(holes):
+        if i != fill_hole:
+            plate *= 1 - _soft(np.hypot(u - hx, v - hy) - 5.0)
+    slot = np.maximum(np.abs(u) - 12.0, 0) ** 2 + np.maximum(np.abs(v) - 3.0, 0) ** 2
+    plate *= 1 - _soft(np.sqrt(slot) - 0.01)
+    # The bend: the far side of the plate tilts away from the lamp and looks darker.
+    shade = 0.72 - 0.10 * _soft(-(u - 18.0), edge=3.0) + 0.03 * np.tanh(v / 30.0)
+    belt = 0.16 + 0.025 * np.roll(line.belt, -belt_phase, axis=1)[:, :WIDTH]
+    img = belt * (1 - plate) + shade * plate
+    img = (gain * img + offset) * line.vignette
+    return img.astype(np.float32), plate
+
+
+def _good_frame(line, rng, **extra):
+    params = dict(dx=rng.normal(0, 0.4), dy=rng.normal(0, 0.4),
+                  angle=np.deg2rad(rng.normal(0, 0.2)), gain=1 + rng.normal(0, 0.025),
+                  offset=rng.normal(0, 0.008), belt_phase=int(rng.integers(0, 3 * WIDTH)))
+    params.update(extra)
+    return _render(line, rng, **params), params
+
+
+def _noise(img, rng):
+    shot = np.sqrt(np.clip(img, 0, None) / 400.0) * rng.standard_normal(img.shape)
+    out = img + 0.006 * rng.standard_normal(img.shape) + shot
+    return np.clip(out, 0, 1).astype(np.float32)
+
+
+def _defect(kind, line, rng):
+    """A defective frame and the box [row0, col0, row1, col1] (end exclusive) or None."""
+    if kind == "shifted":
+        (img, _), _ = _good_frame(line, rng, dx=rng.choice([-1, 1]) * 5.0, dy=2.5)
+        return img, None
+    if kind == "wrong_part":
+        (img, _), _ = _good_frame(line, rng, holes=_WRONG_HOLES)
+        return img, None
+    if kind == "missing_hole":
+        hole = int(rng.integers(0, 4))
+        (img, _), p = _good_frame(line, rng, fill_hole=hole)
+        hx, hy = _HOLES[hole]
+        r, c = int(round(HEIGHT / 2 + p["dy"] + hy)), int(round(WIDTH / 2 + p["dx"] + hx))
+        return img, [r - 7, c - 7, r + 8, c + 8]
+    (img, plate), _ = _good_frame(line, rng)
+    if kind == "blur":
+        from scipy.ndimage import gaussian_filter
+
+        return gaussian_filter(img, 1.6), None
+    inside = np.argwhere(plate > 0.99)
+    if kind == "scratch":
+        r0, c0 = inside[rng.integers(len(inside))]
+        length, theta = rng.uniform(18, 28), rng.uniform(0, np.pi)
+        t = np.linspace(0, length, 200)
+        rows = np.clip(r0 + t * np.sin(theta), 0, HEIGHT - 1)
+        cols = np.clip(c0 + t * np.cos(theta), 0, WIDTH - 1)
+        mark = np.zeros_like(img)
+        mark[np.round(rows).astype(int), np.round(cols).astype(int)] = 1.0
+        from scipy.ndimage import gaussian_filter
+
+        mark = gaussian_filter(mark, 0.6)
+        mark /= mark.max()
+        img = img + 0.09 * mark * plate
+        box = [int(rows.min()) - 1, int(cols.min()) - 1, int(rows.max()) + 2,
+               int(cols.max()) + 2]
+    elif kind == "dent":
+        r0, c0 = inside[rng.integers(len(inside))]
+        dr, dc = line.yy - r0, line.xx - c0
+        bump = np.exp(-(dr ** 2 + dc ** 2) / (2 * 3.0 ** 2))
+        # Light from the side: a dent is a bright flank next to a dark one.
+        img = img + 0.10 * (dc / 3.0) * bump * plate
+        box = [int(r0) - 7, int(c0) - 7, int(r0) + 8, int(c0) + 8]
+    elif kind == "particle":
+        r0, c0 = inside[rng.integers(len(inside))]
+        dot = _soft(np.hypot(line.yy - r0, line.xx - c0) - 1.6)
+        img = img * (1 - 0.7 * dot)
+        box = [int(r0) - 4, int(c0) - 4, int(r0) + 5, int(c0) + 5]
+    else:
+        raise ValueError(f"unknown defect kind {kind!r}")
+    box = [max(box[0], 0), max(box[1], 0), min(box[2], HEIGHT), min(box[3], WIDTH)]
+    return img.astype(np.float32), box
+
+
+def generate_demo_images(folder, *, seed=SEED, n_reference=120, n_batch=60):
+    """Write the demo scenario into `folder` (created if missing).
+
+    Layout: ``reference/part_0001.png ...`` (known-good frames), ``batch/part_0001.png
+    ...`` (a later batch with defective frames), ``labels.json`` (each batch frame's kind
+    and, for local defects, its box ``[row0, col0, row1, col1]``, end exclusive).
+
+    Parameters
+    ----------
+    folder : str or Path
+    seed : int
+    n_reference, n_batch : int
+
+    Returns
+    -------
+    Path
+        The folder.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> out = generate_demo_images(tempfile.mkdtemp(), n_reference=3, n_batch=5)
+    >>> sorted(p.name for p in (out / "batch").iterdir())
+    ['part_0001.png', 'part_0002.png', 'part_0003.png', 'part_0004.png', 'part_0005.png']
+    """
+    folder = Path(folder)
+    rng = np.random.default_rng(seed)
+    line = _Line(rng)
+    for sub in ("reference", "batch"):
+        (folder / sub).mkdir(parents=True, exist_ok=True)
+    for i in range(n_reference):
+        (img, _), _ = _good_frame(line, rng)
+        write_image(folder / "reference" / f"part_{i + 1:04d}.png", _noise(img, rng))
+    frames = []
+    for i in range(n_batch):
+        kind = BATCH_DEFECTS.get(i, "good")
+        if kind == "good":
+            (img, _), _ = _good_frame(line, rng)
+            box = None
+        else:
+            img, box = _defect(kind, line, rng)
+        name = f"part_{i + 1:04d}.png"
+        write_image(folder / "batch" / name, _noise(img, rng))
+        frames.append({"file": f"batch/{name}", "kind": kind, "box": box})
+    labels = {
+        "scenario": "Invented: overhead camera over stamped steel mounting plates on a "
+                    "conveyor; reference = known-good frames, batch = a later shift with "
+                    "defective parts. Generated, not real data.",
+        "generator_version": GENERATOR_VERSION, "seed": seed,
+        "size": [WIDTH, HEIGHT], "bit_depth": 8,
+        "box_convention": "[row0, col0, row1, col1], end exclusive",
+        "batch": frames,
+    }
+    write_text(folder / "labels.json", json.dumps(labels, indent=1) + "\n")
+    return folder
+
+
+def demo_images_path():
+    """The shipped demo images: the repository's ``demo_images/``, else a generated copy.
+
+    In a source checkout (and an editable install) the committed folder is used. An
+    installed wheel does not carry it, so the same images are generated once into
+    ``~/.cache/imgreduce/demo_images-v{GENERATOR_VERSION}``.
+    """
+    shipped = Path(__file__).resolve().parent.parent / "demo_images"
+    if (shipped / "labels.json").exists():
+        return shipped
+    cache = Path.home() / ".cache" / "imgreduce" / f"demo_images-v{GENERATOR_VERSION}"
+    if not (cache / "labels.json").exists():
+        generate_demo_images(cache)
+    return cache
+
+
+def run_demo(output, *, progress=False, say=print):
+    """The main job on the demo images: fit a basis on the reference frames and draw it.
+
+    Parameters
+    ----------
+    output : str or Path
+        Folder for the results (created if missing).
+    progress : bool
+        Progress bars on stderr.
+    say : callable
+        Receives one line of text per step.
+
+    Returns
+    -------
+    dict
+        ``images``, ``rank``, ``basis`` and ``written`` (paths of the files made).
+    """
+    from .basis import fit_basis
+    from .ingest import read_images
+    from .plots import plot_components, plot_mean_image, plot_spectrum, save_figure
+
+    output = Path(output)
+    output.mkdir(parents=True, exist_ok=True)
+    source = demo_images_path()
+    say(f"demo images: {source} (invented scene: stamped plates on a conveyor)")
+    stack = read_images(source / "reference", progress=progress)
+    basis = fit_basis(stack, rank=40, progress=progress)
+    basis_path = output / "basis.npz"
+    basis.save(basis_path)
+    ratio = basis.explained_variance_ratio
+    say(f"fitted {basis.rank} components to {stack.n_images} reference frames "
+        f"({stack.width}x{stack.height}); the first 10 explain {100 * ratio[:10].sum():.1f}% "
+        "of the variance")
+    written = [basis_path]
+    for name, fig in (("mean.png", plot_mean_image(basis)),
+                      ("components.png", plot_components(basis, count=16)),
+                      ("spectrum.png", plot_spectrum(basis))):
+        save_figure(fig, output / name)
+        written.append(output / name)
+    for path in written:
+        say(f"wrote {path}")
+    return {"images": stack.n_images, "rank": basis.rank, "basis": str(basis_path),
+            "source": str(source), "written": [str(p) for p in written]}
+
+
+if __name__ == "__main__":
+    if sys.argv[1:] != ["--regenerate"]:
+        sys.exit("usage: python -m imgreduce.demo --regenerate")
+    target = Path(__file__).resolve().parent.parent / "demo_images"
+    generate_demo_images(target)
+    print(f"wrote {target}")

@@ -1,0 +1,121 @@
+"""Figures of a basis: mean image, basis-image montage, spectrum.
+
+Every function builds a :class:`matplotlib.figure.Figure` with the object-oriented API (no
+pyplot state, no window), returns it, and never shows it; :func:`save_figure` writes one
+atomically. Signed images (basis images) use a diverging colour map centred on zero.
+"""
+
+import numpy as np
+
+from ._files import atomic_path
+
+__all__ = ["plot_mean_image", "plot_components", "plot_spectrum", "save_figure"]
+
+DIVERGING = "RdBu_r"
+
+
+def _figure(width, height):
+    from matplotlib.figure import Figure
+
+    return Figure(figsize=(width, height), layout="constrained")
+
+
+def _as_image(row, image_shape):
+    return np.asarray(row, dtype=np.float32).reshape(image_shape)
+
+
+def _display_signed(img):
+    """A signed basis image as one plane: RGB components are shown by their luma."""
+    if img.ndim == 3:
+        return img @ np.array([0.299, 0.587, 0.114], dtype=np.float32)
+    return img
+
+
+def plot_mean_image(basis, *, ax=None):
+    """The mean training image, in pixel units [0, 1], with a colour bar.
+
+    Examples
+    --------
+    >>> from imgreduce import fit_basis
+    >>> b = fit_basis(np.random.default_rng(0).random((6, 12), dtype=np.float32), rank=2)
+    >>> b.image_shape = (3, 4)
+    >>> fig = plot_mean_image(b)
+    >>> len(fig.axes)
+    2
+    """
+    fig = ax.figure if ax is not None else _figure(5, 4.2)
+    ax = ax if ax is not None else fig.add_subplot()
+    img = _as_image(basis.mean, basis.image_shape)
+    if img.ndim == 3:
+        ax.imshow(np.clip(img, 0, 1))
+    else:
+        shown = ax.imshow(img, cmap="gray", vmin=0, vmax=1)
+        fig.colorbar(shown, ax=ax, shrink=0.8, label="pixel value (0 = black, 1 = white)")
+    ax.set_title(f"Mean image of {basis.n_samples} training images")
+    ax.set_xticks([])
+    ax.set_yticks([])
+    return fig
+
+
+def plot_components(basis, *, count=16, ncols=None):
+    """Montage of the first `count` basis images, each on its own symmetric scale.
+
+    Each panel is drawn with a diverging map from -m to +m, m its largest absolute value,
+    so the sign pattern shows (the sign itself is a convention: see
+    :mod:`imgreduce.basis`). Titles give the index and the share of variance.
+    """
+    count = max(1, min(int(count), basis.rank))
+    ncols = ncols or int(np.ceil(np.sqrt(count)))
+    nrows = int(np.ceil(count / ncols))
+    h, w = basis.image_shape[:2]
+    panel = 2.4
+    fig = _figure(panel * ncols, panel * nrows * h / w + 0.6)
+    ratios = basis.explained_variance_ratio
+    for i in range(nrows * ncols):
+        ax = fig.add_subplot(nrows, ncols, i + 1)
+        ax.set_xticks([])
+        ax.set_yticks([])
+        if i >= count:
+            ax.set_axis_off()
+            continue
+        img = _display_signed(_as_image(basis.components[i], basis.image_shape))
+        m = float(np.abs(img).max()) or 1.0
+        ax.imshow(img, cmap=DIVERGING, vmin=-m, vmax=m)
+        ax.set_title(f"#{i + 1}  {100 * ratios[i]:.1f}%", fontsize=9)
+    fig.suptitle(f"First {count} basis images (red +, blue -, each scaled to its own "
+                 "largest value)", fontsize=10)
+    return fig
+
+
+def plot_spectrum(basis, *, ax=None):
+    """Explained variance per component (log scale) and the cumulative share."""
+    fig = ax.figure if ax is not None else _figure(7, 4.2)
+    ax = ax if ax is not None else fig.add_subplot()
+    ratios = np.asarray(basis.explained_variance_ratio, dtype=np.float64)
+    k = np.arange(1, len(ratios) + 1)
+    ax.semilogy(k, 100 * ratios, "o-", ms=3, color="tab:blue", label="per component")
+    ax.set_xlabel("component")
+    ax.set_ylabel("share of variance per component (%)", color="tab:blue")
+    twin = ax.twinx()
+    cumulative = 100 * np.cumsum(ratios)
+    twin.plot(k, cumulative, color="tab:orange", lw=2, label="cumulative")
+    twin.set_ylim(0, 100)
+    twin.set_ylabel("cumulative share (%)", color="tab:orange")
+    for level in (80, 90, 95):
+        twin.axhline(level, color="0.6", lw=0.8, ls="--")
+        reached = np.nonzero(cumulative >= level)[0]
+        note = f"{level}%: k = {reached[0] + 1}" if len(reached) else f"{level}%: not reached"
+        twin.text(len(ratios), level, note, ha="right", va="bottom", fontsize=8, color="0.35")
+    ax.set_title(f"Spectrum: {len(ratios)} components explain {cumulative[-1]:.1f}% "
+                 "of the variance")
+    ax.grid(True, which="major", alpha=0.3)
+    return fig
+
+
+def save_figure(fig, path, *, dpi=120):
+    """Write `fig` as PNG to `path` atomically (nothing under the name until it is whole)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    FigureCanvasAgg(fig)
+    with atomic_path(path, suffix=".png") as tmp:
+        fig.savefig(tmp, dpi=dpi, format="png")
