@@ -10,11 +10,14 @@ __version__ = "0.1.0"
 from .basis import EigenBasis, fit_basis  # noqa: E402
 from .errors import (BasisFileError, ImgreduceError, InputError,  # noqa: E402
                      ModelMismatchError, ParameterError)
+from .ingest import ImageStack, read_images  # noqa: E402
 
 __all__ = [
     "__version__",
     "EigenBasis",
     "fit_basis",
+    "ImageStack",
+    "read_images",
     "ImgreduceError",
     "InputError",
     "ParameterError",

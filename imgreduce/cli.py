@@ -212,6 +212,16 @@ def _cmd_show(args):
     return EXIT_OK
 
 
+def _cmd_demo(args):
+    from .demo import run_demo
+
+    out = _output_dir(args.output)
+    result = run_demo(out, progress=_progress(args), say=lambda line: _say(args, line))
+    _say(args, f"done: open the PNG figures in {out}")
+    _emit_json(args, result)
+    return EXIT_OK
+
+
 # -- parser ------------------------------------------------------------------------------
 _EXAMPLES = {
     "fit": """examples:
@@ -220,6 +230,9 @@ _EXAMPLES = {
     "show": """examples:
   imgreduce show line3.npz -o line3-figures/
   imgreduce show line3.npz -o figs/ --count 25""",
+    "demo": """examples:
+  imgreduce demo
+  imgreduce demo -o /tmp/imgreduce-demo --json""",
 }
 
 
@@ -255,8 +268,19 @@ def _add_show(sub):
     p.set_defaults(handler=_cmd_show)
 
 
+def _add_demo(sub):
+    p = sub.add_parser("demo", help="run the main job on the shipped demo images",
+                       description="Fit a basis to the shipped demo images (an invented "
+                                   "inspection line) and draw it.",
+                       epilog=_EXAMPLES["demo"], formatter_class=_Formatter)
+    p.add_argument("-o", "--output", default="imgreduce-demo", metavar="DIR",
+                   help="folder for the results (default: ./imgreduce-demo)")
+    _common(p)
+    p.set_defaults(handler=_cmd_demo)
+
+
 # Each entry adds one sub-command; keep the order of DESIGN.md.
-_COMMANDS = [_add_fit, _add_show]
+_COMMANDS = [_add_fit, _add_show, _add_demo]
 
 
 def get_parser():
