@@ -335,7 +335,7 @@ def _describe(image_shape, color, bit_depth):
     return text + " images"
 
 
-def fit_basis(data, *, rank=None, seed=0, exact=None, oversample=10, power_iterations=4,
+def fit_basis(data, *, rank=None, seed=0, exact=None, oversample=10, power_iterations=2,
               progress=False):
     """Fit an eigen-image basis by randomized (or exact) SVD of the centred images.
 
@@ -354,9 +354,11 @@ def fit_basis(data, *, rank=None, seed=0, exact=None, oversample=10, power_itera
     oversample : int
         Extra sketch columns (Halko, Martinsson & Tropp 2011).
     power_iterations : int
-        Subspace iterations, each followed by re-orthonormalization. The default 4 keeps
-        the reconstruction error within 0.2% of the optimum even when the spectrum has no
-        gap at `rank` (see ``benchmarks/fit_vs_reference.py``).
+        Subspace iterations, each followed by re-orthonormalization; each costs two
+        passes over the data. With the default 2 the reconstruction error stayed within
+        0.15% of the optimum where the signal meets the noise floor just past `rank`
+        (``benchmarks/fit_vs_reference.py``). Spectra with no gap at all and a flat
+        noise floor need more: 4 brought such a case from 0.5% to 0.12%.
     progress : bool or object
         Progress bar on stderr (see :mod:`imgreduce._progress`).
 

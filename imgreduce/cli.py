@@ -169,7 +169,7 @@ def _cmd_fit(args):
     started = time.perf_counter()
     stack = _read_source(args)
     basis = fit_basis(stack, rank=args.rank, seed=args.seed, exact=True if args.exact else None,
-                      progress=_progress(args))
+                      power_iterations=args.power_iterations, progress=_progress(args))
     basis.save(out)
     seconds = time.perf_counter() - started
     ratio = basis.explained_variance_ratio
@@ -249,6 +249,9 @@ def _add_fit(sub):
     p.add_argument("--seed", type=int, default=0, help="random seed (default: 0)")
     p.add_argument("--exact", action="store_true",
                    help="exact SVD instead of the randomized one (small problems)")
+    p.add_argument("--power-iterations", type=int, default=2, metavar="N",
+                   help="subspace iterations of the randomized SVD (default: 2; raise for "
+                        "spectra that are flat around K)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing BASIS.npz")
     _common(p)
     p.set_defaults(handler=_cmd_fit)

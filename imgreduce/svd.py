@@ -135,7 +135,7 @@ def _small_svd(b):
     return s, vt
 
 
-def randomized_svd(x, rank, *, oversample=10, power_iterations=4, seed=0, mean=None,
+def randomized_svd(x, rank, *, oversample=10, power_iterations=2, seed=0, mean=None,
                    total=None, progress=None):
     """Truncated SVD of ``x - mean`` by randomized subspace iteration.
 
