@@ -219,9 +219,9 @@ class EigenBasis:
                   policy.get("bit_depth"))
         mine = (self.image_shape, self.metadata.get("color"), self.metadata.get("bit_depth"))
         problems = []
-        if theirs[0] != mine[0]:
+        if theirs[0][:2] != mine[0][:2]:
             problems.append("size")
-        if mine[1] is not None and theirs[1] != mine[1]:
+        if (mine[1] is not None and theirs[1] != mine[1]) or len(theirs[0]) != len(mine[0]):
             problems.append("colour")
         if mine[2] is not None and theirs[2] != mine[2]:
             problems.append("bit depth")

@@ -8,6 +8,7 @@ raises :class:`~imgreduce.errors.ImgreduceError`; this module prints it on one l
 
 import argparse
 import json
+import math
 import sys
 import time
 from pathlib import Path
@@ -212,6 +213,181 @@ def _cmd_show(args):
     return EXIT_OK
 
 
+def _ranks_type(text):
+    try:
+        ranks = sorted({int(part) for part in text.split(",") if part.strip()})
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"expected ranks separated by commas (for example 5,20,50), got {text!r}") from None
+    if not ranks or ranks[0] < 1:
+        raise argparse.ArgumentTypeError(f"ranks must be whole numbers >= 1, got {text!r}")
+    return ranks
+
+
+def _finite(value, digits=4):
+    """A float for JSON/CSV: rounded, and None where it is infinite or undefined."""
+    value = float(value)
+    return round(value, digits) if math.isfinite(value) else None
+
+
+def _write_csv(path, header, rows):
+    import csv
+    import io
+
+    from ._files import write_text
+
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\n")
+    writer.writerow(header)
+    for row in rows:
+        writer.writerow(["" if v is None else v for v in row])
+    write_text(path, buffer.getvalue())
+
+
+def _cmd_rebuild(args):
+    import numpy as np
+
+    from ._files import write_image
+    from .plots import plot_rebuild_panel, save_figure
+    from .quality import reconstruction_metrics
+
+    basis = _load_basis(args.basis)
+    too_big = [r for r in args.ranks if r > basis.rank]
+    if too_big:
+        raise ParameterError(f"--ranks {','.join(map(str, too_big))}: the basis {args.basis} "
+                             f"holds {basis.rank} components; use ranks up to {basis.rank}")
+    stack = _read_source(args)
+    basis.check_compatible(stack, what=f"the images in {' '.join(args.src)}")
+    out = _output_dir(args.output, sources=args.src)
+    panels = min(args.limit, stack.n_images) if args.limit is not None else min(
+        12, stack.n_images)
+    rows, summary, written = [], [], []
+    names = [Path(p).stem for p in stack.paths]
+    if len(set(names)) < len(names):  # same stem in different folders: keep them apart
+        names = [f"{i + 1:05d}_{n}" for i, n in enumerate(names)]
+    per_rank = {}
+    coef = basis.encode(stack.pixels, rank=max(args.ranks))
+    for r in args.ranks:
+        rec = basis.decode(coef[:, :r], rank=r)
+        m = reconstruction_metrics(stack.pixels, rec, image_shape=stack.image_shape)
+        per_rank[r] = m
+        if args.save_images:
+            folder = out / f"rank_{r:03d}"
+            folder.mkdir(exist_ok=True)
+            suffix = ".tif" if stack.channels == 3 and stack.bit_depth > 8 else ".png"
+            for i in range(stack.n_images):
+                write_image(folder / (names[i] + suffix), rec[i].reshape(stack.image_shape),
+                            bit_depth=8 if stack.bit_depth <= 8 else 16)
+            written.append(str(folder))
+        summary.append({"rank": r, "psnr_mean": _finite(np.mean(m["psnr"])),
+                        "psnr_min": _finite(np.min(m["psnr"])),
+                        "ssim_mean": _finite(np.mean(m["ssim"])),
+                        "clipped_fraction": _finite(np.mean(m["clipped_fraction"]), 6)})
+    for i, path in enumerate(stack.paths):
+        for r in args.ranks:
+            m = per_rank[r]
+            rows.append([path, r, _finite(m["psnr"][i]), _finite(m["ssim"][i], 5),
+                         _finite(m["max_abs_error"][i], 6), _finite(m["rmse"][i], 6),
+                         _finite(m["clipped_fraction"][i], 6)])
+    csv_path = out / "metrics.csv"
+    _write_csv(csv_path, ["path", "rank", "psnr", "ssim", "max_abs_error", "rmse",
+                          "clipped_fraction"], rows)
+    written.append(str(csv_path))
+    for i in range(panels):
+        recs = {r: basis.decode(coef[i:i + 1, :r], rank=r)[0].reshape(stack.image_shape)
+                for r in args.ranks}
+        fig = plot_rebuild_panel(stack.images(i), recs, bit_depth=stack.bit_depth,
+                                 title=f"{Path(stack.paths[i]).name}: "
+                                       + ", ".join(f"rank {r} {_finite(per_rank[r]['psnr'][i], 1)} dB"
+                                                   for r in args.ranks))
+        path = out / f"panel_{names[i]}.png"
+        save_figure(fig, path)
+        written.append(str(path))
+    for item in summary:
+        _say(args, f"rank {item['rank']:>4}: PSNR mean {item['psnr_mean']} dB, worst "
+                   f"{item['psnr_min']} dB, SSIM mean {item['ssim_mean']}, clipped "
+                   f"{100 * (item['clipped_fraction'] or 0):.3f}% of pixel values")
+    _say(args, f"wrote {csv_path} and {panels} panel(s) in {out}")
+    _emit_json(args, {
+        "basis": str(args.basis), "images": stack.n_images, "ranks": args.ranks,
+        "summary": summary, "written": written,
+        "metrics": [dict(zip(("path", "rank", "psnr", "ssim", "max_abs_error", "rmse",
+                              "clipped_fraction"), row)) for row in rows],
+    })
+    return EXIT_OK
+
+
+def _cmd_choose(args):
+    import numpy as np
+
+    from .quality import choose_rank
+
+    basis = _load_basis(args.basis) if args.basis else None
+    stack = _read_source(args)
+    if basis is not None:
+        basis.check_compatible(stack, what=f"the images in {' '.join(args.src)}")
+    out = _output_dir(args.output, sources=args.src) if args.output else None
+    choice = choose_rank(stack.pixels, image_shape=stack.image_shape, basis=basis,
+                         target_psnr=args.target_psnr, target_ssim=args.target_ssim,
+                         variance=args.variance, max_rank=args.max_rank, folds=args.folds,
+                         seed=args.seed, progress=_progress(args))
+    curve = choice.curve
+    summary = curve.summary()
+    points = [{"rank": int(k), "explained": _finite(curve.explained[k], 6),
+               "psnr_mean": _finite(summary["psnr_mean"][k]),
+               "psnr_p05": _finite(summary["psnr_p05"][k]),
+               "psnr_min": _finite(summary["psnr_min"][k])} for k in range(1, curve.max_rank + 1)]
+    rules = {name: {k: (_finite(v, 6) if isinstance(v, float) else v) for k, v in rule.items()}
+             for name, rule in choice.rules.items()}
+    units = {"psnr": " dB", "ssim": "", "variance": " of the variance"}[choice.rule]
+    how = ("held-out images (%d-fold cross-validation)" % curve.extra.get("folds", 0)
+           if curve.held_out else f"images scored by {args.basis}")
+    if choice.target_met:
+        _say(args, f"recommended rank {choice.rank}: the smallest whose 5th-percentile image "
+                   f"meets {choice.target:g}{units} ({how})" if choice.rule != "variance" else
+                   f"recommended rank {choice.rank}: the smallest explaining "
+                   f"{100 * choice.target:g}% of the variance")
+    else:
+        _warn(args, f"no rank up to {curve.max_rank} meets {choice.target:g}{units}; reporting "
+                    f"{choice.rank} (raise --max-rank, or lower the target)")
+    at = points[choice.rank - 1]
+    _say(args, f"at rank {choice.rank}: PSNR mean {at['psnr_mean']} dB, 5th percentile "
+               f"{at['psnr_p05']} dB, worst {at['psnr_min']} dB")
+    for name, label in (("gavish_donoho", "Gavish-Donoho noise floor"),
+                        ("broken_stick", "broken-stick rule"), ("psnr", "PSNR target"),
+                        ("variance", "variance fraction"), ("ssim", "SSIM target")):
+        if name in rules and name != choice.rule:
+            _say(args, f"  {label}: rank {rules[name]['rank']}")
+    written = []
+    if out is not None:
+        from .plots import plot_quality_curves, plot_rank_strip, save_figure
+
+        save_figure(plot_quality_curves(choice), out / "quality_curves.png")
+        p05 = curve.mse[:, choice.rank]
+        worst = int(np.argmax(p05))
+        typical = int(np.argsort(p05)[len(p05) // 2])
+        picks = [typical, worst]
+        recs = curve.reconstruct(picks, choice.rank)
+        labels = [f"typical ({Path(stack.paths[typical]).name})",
+                  f"worst ({Path(stack.paths[worst]).name})"]
+        save_figure(plot_rank_strip([stack.images(i) for i in picks],
+                                    [r.reshape(stack.image_shape) for r in recs], labels,
+                                    rank=choice.rank), out / "rank_strip.png")
+        _write_csv(out / "curve.csv", ["rank", "explained", "psnr_mean", "psnr_p05", "psnr_min"],
+                   [[p[k] for k in ("rank", "explained", "psnr_mean", "psnr_p05", "psnr_min")]
+                    for p in points])
+        written = [str(out / n) for n in ("quality_curves.png", "rank_strip.png", "curve.csv")]
+        for path in written:
+            _say(args, f"wrote {path}")
+    _emit_json(args, {
+        "rank": choice.rank, "rule": choice.rule, "target": choice.target,
+        "target_met": choice.target_met, "held_out": curve.held_out,
+        "folds": curve.extra.get("folds"), "images": stack.n_images,
+        "curve": points, "rules": rules, "ssim": choice.ssim, "written": written,
+    })
+    return EXIT_OK
+
+
 def _cmd_demo(args):
     from .demo import run_demo
 
@@ -230,6 +406,13 @@ _EXAMPLES = {
     "show": """examples:
   imgreduce show line3.npz -o line3-figures/
   imgreduce show line3.npz -o figs/ --count 25""",
+    "rebuild": """examples:
+  imgreduce rebuild line3/batch-0412/ --basis line3.npz --ranks 5,20,50 -o rebuilt/
+  imgreduce rebuild scans/ --basis scans.npz --ranks 10,40 --limit 3 --save-images -o out/""",
+    "choose": """examples:
+  imgreduce choose line3/good/ --target-psnr 38
+  imgreduce choose line3/batch-0412/ --basis line3.npz --target-ssim 0.95 -o choice/
+  imgreduce choose scans/ --variance 0.9 --json""",
     "demo": """examples:
   imgreduce demo
   imgreduce demo -o /tmp/imgreduce-demo --json""",
@@ -271,6 +454,58 @@ def _add_show(sub):
     p.set_defaults(handler=_cmd_show)
 
 
+def _add_rebuild(sub):
+    p = sub.add_parser("rebuild", help="reconstruct images at chosen ranks, with error maps",
+                       description="Reconstruct images from a basis at several ranks: panel "
+                                   "figures with error maps, and PSNR, SSIM, RMSE and max "
+                                   "error per image and rank in metrics.csv.",
+                       epilog=_EXAMPLES["rebuild"], formatter_class=_Formatter)
+    _source_options(p)
+    p.add_argument("--basis", "-b", required=True, metavar="BASIS.npz",
+                   help="basis to reconstruct from (fitted on these or on other images)")
+    p.add_argument("--ranks", type=_ranks_type, default=[5, 20, 50], metavar="K1,K2,...",
+                   help="ranks to reconstruct at (default: 5,20,50)")
+    p.add_argument("--limit", type=_positive_int, default=None, metavar="N",
+                   help="panel figures for the first N images (default: 12; metrics cover "
+                        "all images)")
+    p.add_argument("--save-images", action="store_true",
+                   help="also write every reconstruction (clipped to the file range) under "
+                        "DIR/rank_K/")
+    p.add_argument("-o", "--output", required=True, metavar="DIR",
+                   help="folder for panels and metrics.csv (created if missing)")
+    _common(p)
+    p.set_defaults(handler=_cmd_rebuild)
+
+
+def _add_choose(sub):
+    p = sub.add_parser("choose", help="quality against rank, and a recommended rank",
+                       description="Quality-vs-rank curves on images the basis did not see "
+                                   "(k-fold over SRC, or a basis fitted on other images) "
+                                   "and the smallest rank whose 5th-percentile image meets "
+                                   "a target; the Gavish-Donoho and broken-stick ranks are "
+                                   "reported beside it.",
+                       epilog=_EXAMPLES["choose"], formatter_class=_Formatter)
+    _source_options(p)
+    p.add_argument("--basis", "-b", default=None, metavar="BASIS.npz",
+                   help="score SRC with this basis (fitted on other images) instead of k-fold")
+    target = p.add_mutually_exclusive_group()
+    target.add_argument("--target-psnr", type=float, default=None, metavar="DB",
+                        help="PSNR the 5th-percentile image must reach (default: 40 dB)")
+    target.add_argument("--target-ssim", type=float, default=None, metavar="S",
+                        help="SSIM the 5th-percentile image must reach (e.g. 0.95)")
+    target.add_argument("--variance", type=float, default=None, metavar="F",
+                        help="smallest rank explaining this fraction of the variance (e.g. 0.9)")
+    p.add_argument("--max-rank", type=_positive_int, default=None, metavar="K",
+                   help="largest rank tried (default: up to 100)")
+    p.add_argument("--folds", type=int, default=5, metavar="N",
+                   help="cross-validation folds without --basis (default: 5)")
+    p.add_argument("--seed", type=int, default=0, help="random seed (default: 0)")
+    p.add_argument("-o", "--output", default=None, metavar="DIR",
+                   help="also write quality_curves.png, rank_strip.png and curve.csv here")
+    _common(p)
+    p.set_defaults(handler=_cmd_choose)
+
+
 def _add_demo(sub):
     p = sub.add_parser("demo", help="run the main job on the shipped demo images",
                        description="Fit a basis to the shipped demo images (an invented "
@@ -283,7 +518,7 @@ def _add_demo(sub):
 
 
 # Each entry adds one sub-command; keep the order of DESIGN.md.
-_COMMANDS = [_add_fit, _add_show, _add_demo]
+_COMMANDS = [_add_fit, _add_show, _add_rebuild, _add_choose, _add_demo]
 
 
 def get_parser():

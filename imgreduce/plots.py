@@ -9,7 +9,8 @@ import numpy as np
 
 from ._files import atomic_path
 
-__all__ = ["plot_mean_image", "plot_components", "plot_spectrum", "save_figure"]
+__all__ = ["plot_mean_image", "plot_components", "plot_spectrum", "save_figure",
+           "plot_rebuild_panel", "plot_quality_curves", "plot_rank_strip"]
 
 DIVERGING = "RdBu_r"
 
@@ -119,3 +120,124 @@ def save_figure(fig, path, *, dpi=120):
     FigureCanvasAgg(fig)
     with atomic_path(path, suffix=".png") as tmp:
         fig.savefig(tmp, dpi=dpi, format="png")
+
+
+def _display_image(img):
+    img = np.clip(img, 0.0, 1.0)
+    return dict(X=img) if img.ndim == 3 else dict(X=img, cmap="gray", vmin=0, vmax=1)
+
+
+def plot_rebuild_panel(original, reconstructions, *, bit_depth=8, title=None):
+    """Original, reconstructions at several ranks, and their signed error maps.
+
+    Parameters
+    ----------
+    original : ndarray, shape (h, w) or (h, w, 3)
+        Pixel units [0, 1].
+    reconstructions : dict of int to ndarray
+        Rank -> unclipped reconstruction, same shape. Displayed clipped.
+    bit_depth : int
+        The error colour bar is in the file's own grey levels (``2**bit_depth - 1`` = 1).
+    title : str, optional
+
+    Returns
+    -------
+    Figure
+        Top row: original and reconstructions; bottom row: reconstruction - original on
+        one diverging scale, symmetric about zero and shared across ranks.
+    """
+    ranks = sorted(reconstructions)
+    levels = 2 ** bit_depth - 1
+    errors = {r: _display_signed(np.asarray(reconstructions[r], np.float32) - original) * levels
+              for r in ranks}
+    m = max(float(np.abs(e).max()) for e in errors.values()) or 1.0
+    h, w = original.shape[:2]
+    cols = len(ranks) + 1
+    fig = _figure(2.6 * cols + 0.8, 2 * 2.6 * h / w + 0.9)
+    grid = fig.add_gridspec(2, cols)
+    ax = fig.add_subplot(grid[0, 0])
+    ax.imshow(**_display_image(original))
+    ax.set_title("original", fontsize=9)
+    for j, r in enumerate(ranks, start=1):
+        ax = fig.add_subplot(grid[0, j])
+        ax.imshow(**_display_image(np.asarray(reconstructions[r])))
+        ax.set_title(f"rank {r}", fontsize=9)
+    shown = None
+    for j, r in enumerate(ranks, start=1):
+        ax = fig.add_subplot(grid[1, j])
+        shown = ax.imshow(errors[r], cmap=DIVERGING, vmin=-m, vmax=m)
+        rms = float(np.sqrt(np.mean(errors[r] ** 2)))
+        ax.set_title(f"error at rank {r} (RMS {rms:.2g})", fontsize=8)
+    note = fig.add_subplot(grid[1, 0])
+    note.set_axis_off()
+    note.text(0.5, 0.5, "error = rebuilt - original\nin grey levels\n"
+              f"(0 to {levels}); one scale\nfor all ranks", ha="center", va="center",
+              fontsize=8, transform=note.transAxes)
+    for ax in fig.axes:
+        ax.set_xticks([])
+        ax.set_yticks([])
+    fig.colorbar(shown, ax=fig.axes[cols:], shrink=0.85, label="grey levels")
+    if title:
+        fig.suptitle(title, fontsize=10)
+    return fig
+
+
+def plot_quality_curves(choice, *, ax=None):
+    """Held-out PSNR against rank (mean, 5th percentile, worst) with the choice marked.
+
+    Parameters
+    ----------
+    choice : RankChoice
+        From :func:`imgreduce.quality.choose_rank`.
+    """
+    fig = ax.figure if ax is not None else _figure(7.5, 4.5)
+    ax = ax if ax is not None else fig.add_subplot()
+    curve = choice.curve
+    summary = curve.summary()
+    ranks = curve.ranks[1:]
+    ax.plot(ranks, summary["psnr_mean"][1:], color="tab:blue", lw=2, label="mean image")
+    ax.plot(ranks, summary["psnr_p05"][1:], color="tab:orange", lw=2,
+            label="5th percentile image")
+    ax.plot(ranks, summary["psnr_min"][1:], color="tab:red", lw=1, ls=":", label="worst image")
+    if choice.rule == "psnr":
+        ax.axhline(choice.target, color="0.3", ls="--", lw=1,
+                   label=f"target {choice.target:g} dB")
+    ax.axvline(choice.rank, color="tab:green", lw=1.5,
+               label=f"chosen rank {choice.rank} ({choice.rule})")
+    markers = {"gavish_donoho": ("Gavish-Donoho", "v"), "broken_stick": ("broken stick", "^")}
+    for key, (label, marker) in markers.items():
+        r = choice.rules.get(key, {}).get("rank")
+        if r and 1 <= r <= curve.max_rank:
+            ax.plot([r], [summary["psnr_p05"][r]], marker, color="k", ms=7,
+                    label=f"{label}: rank {r}")
+    ax.set_xlabel("rank (components kept)")
+    ax.set_ylabel("PSNR (dB)")
+    where = "held-out images" if curve.held_out else "images scored by the given basis"
+    ax.set_title(f"Reconstruction quality against rank, {where}")
+    ax.grid(True, alpha=0.3)
+    ax.legend(fontsize=8, loc="lower right")
+    return fig
+
+
+def plot_rank_strip(originals, reconstructions, labels, *, rank):
+    """Pairs of original and reconstruction at `rank` (for example a typical and the worst).
+
+    Parameters
+    ----------
+    originals, reconstructions : list of ndarray
+        Images in pixel units (reconstructions unclipped; displayed clipped).
+    labels : list of str
+    rank : int
+    """
+    n = len(originals)
+    h, w = originals[0].shape[:2]
+    fig = _figure(2 * 2.6 + 0.4, n * 2.6 * h / w + 0.7)
+    for i, (orig, rec, label) in enumerate(zip(originals, reconstructions, labels)):
+        for j, (img, what) in enumerate(((orig, "original"), (rec, f"rank {rank}"))):
+            ax = fig.add_subplot(n, 2, 2 * i + j + 1)
+            ax.imshow(**_display_image(np.asarray(img)))
+            ax.set_title(f"{label}: {what}", fontsize=8)
+            ax.set_xticks([])
+            ax.set_yticks([])
+    fig.suptitle(f"Held-out images rebuilt at the chosen rank {rank}", fontsize=10)
+    return fig

@@ -355,8 +355,9 @@ def cross_validated_curve(pixels, *, max_rank=None, folds=5, seed=0, power_itera
     seed : int
         Seed of the fold assignment and of the randomized fits.
     power_iterations : int
-        Subspace iterations of each fold's randomized fit. Two are enough for the curves
-        (they change by under 0.01 dB against four; see ``benchmarks/choose_vs_fit.py``).
+        Subspace iterations of each fold's randomized fit. Two are enough for the curves:
+        against four, mean and 5th-percentile PSNR moved by at most 0.013 dB at any rank
+        on 2000 images of 128x128, K = 100 (``benchmarks/choose_vs_fit.py``).
     image_shape : tuple of int, optional
     progress : bool or object
 
