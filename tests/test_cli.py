@@ -135,4 +135,4 @@ def test_demo_command(tmp_path, capsys):
     code, out, err = _run(capsys, "demo", "-o", str(tmp_path / "d"), "--json")
     assert code == 0
     doc = json.loads(out)
-    assert doc["images"] == 120 and len(doc["written"]) == 4
+    assert doc["images"] == 120 and len(doc["written"]) == 8
