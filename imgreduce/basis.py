@@ -77,7 +77,7 @@ class EigenBasis:
     """
 
     def __init__(self, mean, components, singular_values, *, n_samples, total_variance,
-                 image_shape=None, metadata=None):
+                 image_shape=None, metadata=None, extra=None):
         self.mean = np.ascontiguousarray(mean, dtype=np.float32)
         self.components = np.ascontiguousarray(components, dtype=np.float32)
         self.singular_values = np.asarray(singular_values, dtype=np.float64)
@@ -86,6 +86,8 @@ class EigenBasis:
         p = self.mean.shape[0]
         self.image_shape = tuple(int(d) for d in (image_shape or (p,)))
         self.metadata = dict(metadata or {})
+        # Optional named arrays saved with the basis (e.g. a screening calibration).
+        self.extra = {str(k): np.asarray(v) for k, v in (extra or {}).items()}
         if self.components.ndim != 2 or self.components.shape[1] != p:
             raise ValueError(f"components must have shape (k, {p}), got {self.components.shape}")
         if len(self.singular_values) != len(self.components):
@@ -250,6 +252,10 @@ class EigenBasis:
         path = Path(path)
         arrays = {"mean": self.mean, "components": self.components,
                   "singular_values": self.singular_values}
+        for key, value in self.extra.items():
+            if key in arrays or key == "metadata":
+                raise ValueError(f"extra array name {key!r} is reserved")
+            arrays[key] = value
         meta = dict(self.metadata)
         meta.update(format=FORMAT_NAME, format_version=FORMAT_VERSION,
                     image_shape=list(self.image_shape), n_samples=self.n_samples,
@@ -293,6 +299,8 @@ class EigenBasis:
                         f"imgreduce ({__version__}) reads up to {FORMAT_VERSION} (upgrade "
                         "imgreduce)")
                 arrays = {k: data[k] for k in ("mean", "components", "singular_values")}
+                extra = {k: data[k] for k in data.files
+                         if k not in arrays and k != "metadata"}
         except BasisFileError:
             raise
         except KeyError as exc:
@@ -302,7 +310,8 @@ class EigenBasis:
             raise BasisFileError(f"{name} is not a readable imgreduce basis file "
                                  f"(truncated or not an .npz archive: {exc})") from None
         for key, expected in meta.get("checksums", {}).items():
-            if key in arrays and _sha256(arrays[key]) != expected:
+            value = arrays.get(key, extra.get(key))
+            if value is not None and _sha256(value) != expected:
                 raise BasisFileError(f"{name} is corrupted: the checksum of '{key}' does not "
                                      "match (restore it from a copy or fit again)")
         fields = ("image_shape", "n_samples", "total_variance")
@@ -313,7 +322,7 @@ class EigenBasis:
         try:
             return cls(arrays["mean"], arrays["components"], arrays["singular_values"],
                        n_samples=meta["n_samples"], total_variance=meta["total_variance"],
-                       image_shape=meta["image_shape"], metadata=meta_rest)
+                       image_shape=meta["image_shape"], metadata=meta_rest, extra=extra)
         except ValueError as exc:
             raise BasisFileError(f"{name} is inconsistent: {exc}") from None
 

@@ -388,6 +388,289 @@ def _cmd_choose(args):
     return EXIT_OK
 
 
+def _alpha_type(text):
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number between 0 and 1, got {text!r}") \
+            from None
+    if not 0 < value < 0.5:
+        raise argparse.ArgumentTypeError(f"expected a false-alarm rate between 0 and 0.5 "
+                                         f"(for example 0.01), got {value:g}")
+    return value
+
+
+def _reading(args):
+    return dict(color=args.color, size=args.size, recursive=args.recursive,
+                strict=args.strict, bits=args.bits, workers=args.workers)
+
+
+def _read_reference(args):
+    from .ingest import read_images
+
+    stack = read_images(args.reference, progress=_progress(args), **_reading(args))
+    for item in stack.rejected:
+        _warn(args, f"skipped reference file {item.path}: {item.reason}")
+    return stack
+
+
+def _screen_chunks(args, basis, calibration, files, sink):
+    """Read SRC `files` chunk by chunk and screen each; return rejected files."""
+    from ._progress import progress_bar
+    from .errors import InputError
+    from .ingest import read_images
+    from .screen import Screener
+
+    screener = Screener(basis, calibration)
+    rejected = []
+    what = f"the images in {' '.join(args.src)}"
+    with progress_bar(_progress(args), total=len(files), desc="screening",
+                      unit="img") as bar:
+        for start in range(0, len(files), args.chunk):
+            part = files[start:start + args.chunk]
+            try:
+                stack = read_images(part, min_images=1, **{**_reading(args),
+                                                           "recursive": False})
+            except InputError as exc:
+                if "usable image" not in str(exc):
+                    raise
+                rejected += [(str(p), "could not be read") for p in part]
+                bar.update(len(part))
+                continue
+            rejected += [(r.path, r.reason) for r in stack.rejected]
+            basis.check_compatible(stack, what=what)
+            sink(stack, screener.screen(stack.pixels))
+            bar.update(len(part))
+    return rejected
+
+
+def _cmd_screen(args):
+    import numpy as np
+
+    from ._files import write_image, write_text
+    from .basis import fit_basis
+    from .ingest import find_images
+    from .plots import plot_control_chart, residual_overlay, save_figure
+    from .screen import (CAUTION, Calibration, calibrate, calibrate_on_batch,
+                         screen_batch)
+
+    started = time.perf_counter()
+    if args.limits == "analytic" and not args.reference:
+        raise ParameterError("--limits analytic needs --reference DIR (the textbook limits "
+                             "come from the reference images' eigenvalues)")
+    if args.reference and any(Path(args.reference).resolve() == Path(s).resolve()
+                              for s in args.src):
+        raise ParameterError("--reference is the folder being screened; give known-good "
+                             "images the screened batch does not contain, or leave "
+                             "--reference out to screen the batch against itself")
+    save_to = (_output_file(args.save_basis, suffix=".npz", overwrite=args.overwrite,
+                            what="--save-basis file") if args.save_basis else None)
+    out = _output_dir(args.output, sources=args.src) if args.output else None
+    basis = _load_basis(args.basis) if args.basis else None
+    if basis is not None and args.rank is not None and args.rank > basis.rank:
+        raise ParameterError(f"--rank {args.rank}: the basis {args.basis} holds {basis.rank} "
+                             f"components; use --rank {basis.rank} or less")
+    stored = Calibration.from_basis(basis) if basis is not None else None
+    files = find_images(args.src if len(args.src) > 1 else args.src[0],
+                        recursive=args.recursive)
+
+    rows, maps_done, written = [], [0], []
+    flagged_paths, rejected = [], []
+    names_seen = {}
+    overlay_dir = out / "flagged" if out else None
+
+    def sink(stack, chunk):
+        for i, path in enumerate(stack.paths):
+            rows.append({"path": path, "q": float(chunk["q"][i]), "t2": float(chunk["t2"][i]),
+                         "local": float(chunk["local"][i]), "reasons": chunk["reasons"][i],
+                         "peak": chunk["peak"][i], "box": chunk["box"][i]})
+            if not chunk["reasons"][i]:
+                continue
+            flagged_paths.append(path)
+            if overlay_dir is None or maps_done[0] >= args.max_overlays:
+                continue
+            stem = Path(path).stem
+            names_seen[stem] = names_seen.get(stem, 0) + 1
+            name = stem if names_seen[stem] == 1 else f"{stem}_{names_seen[stem]}"
+            overlay_dir.mkdir(exist_ok=True)
+            img = residual_overlay(stack.images(i), chunk["maps"][i], box=chunk["box"][i],
+                                   peak=chunk["peak"][i], limit=calibration.local_limit)
+            write_image(overlay_dir / f"{name}.png", img / 255.0)
+            maps_done[0] += 1
+
+    if args.reference:
+        reference = _read_reference(args)
+        if basis is not None:
+            basis.check_compatible(reference, what=f"the reference images in {args.reference}")
+        rank = args.rank
+        if rank is None and basis is not None:
+            from .screen import choose_screening_rank
+
+            rank = min(choose_screening_rank(reference, seed=args.seed)[0], basis.rank)
+        calibration = calibrate(reference, rank=rank, alpha=args.alpha, folds=args.folds,
+                                seed=args.seed, limits=args.limits)
+        if basis is None:
+            basis = fit_basis(reference, rank=calibration.rank, seed=args.seed)
+        mode = "reference"
+        calibration.attach(basis)
+        rejected = _screen_chunks(args, basis, calibration, files, sink)
+    elif basis is not None and stored is not None:
+        if args.rank is not None and args.rank != stored.rank:
+            raise ParameterError(f"{args.basis} carries limits calibrated at rank "
+                                 f"{stored.rank}; drop --rank, or give --reference DIR to "
+                                 "calibrate again")
+        calibration, mode = stored, "basis"
+        rejected = _screen_chunks(args, basis, calibration, files, sink)
+    else:
+        stack = _read_source(args)
+        rejected = [(r.path, r.reason) for r in stack.rejected]
+        if basis is not None:
+            basis.check_compatible(stack, what=f"the images in {' '.join(args.src)}")
+            calibration = calibrate_on_batch(basis, stack, rank=args.rank, alpha=args.alpha)
+            calibration.attach(basis)
+            mode = "batch"
+        else:
+            basis, _ = screen_batch(stack, rank=args.rank, alpha=args.alpha,
+                                    folds=args.folds, seed=args.seed, maps=False)
+            calibration = Calibration.from_basis(basis)
+            mode = "self"
+        from .screen import Screener
+
+        sink(stack, Screener(basis, calibration).screen(stack.pixels))
+    if not rejected:
+        rejected = []
+    for path, reason in rejected:
+        _warn(args, f"skipped {path}: {reason}")
+    if not rows:
+        raise ParameterError("no image of SRC could be read; nothing was screened")
+
+    limits = calibration.limits()
+    n_flagged = len(flagged_paths)
+    seconds = time.perf_counter() - started
+    if save_to is not None:
+        basis.save(save_to)
+        written.append(str(save_to))
+    if out is not None:
+        def fmt(pair):
+            return "" if pair is None else " ".join(str(v) for v in pair)
+
+        csv_path = out / "screen.csv"
+        _write_csv(csv_path, ["path", "q", "q_limit", "t2", "t2_limit", "local", "local_limit",
+                              "flagged", "reasons", "peak", "box"],
+                   [[r["path"], _finite(r["q"], 6), _finite(limits["q_limit"], 6),
+                     _finite(r["t2"], 4), _finite(limits["t2_limit"], 4),
+                     _finite(r["local"], 3), _finite(limits["local_limit"], 3),
+                     int(bool(r["reasons"])), ";".join(r["reasons"]), fmt(r["peak"]),
+                     fmt(r["box"])] for r in rows])
+        written.append(str(csv_path))
+        fig = plot_control_chart([r["q"] for r in rows], [r["t2"] for r in rows],
+                                 [r["local"] for r in rows], limits,
+                                 flagged=[bool(r["reasons"]) for r in rows],
+                                 title=f"{n_flagged} of {len(rows)} images flagged "
+                                       f"(alpha {args.alpha:g}, rank {calibration.rank}, "
+                                       f"mode {mode})", note=CAUTION)
+        chart = out / "control_chart.png"
+        save_figure(fig, chart)
+        written.append(str(chart))
+        if maps_done[0]:
+            written.append(str(overlay_dir))
+        summary = out / "summary.txt"
+        write_text(summary, "\n".join([
+            f"imgreduce {__version__} screen: {len(rows)} images, {n_flagged} flagged",
+            f"mode: {mode} (limits: {calibration.method})",
+            f"alpha: {args.alpha:g} per good image (each of {len(calibration.statistics)} "
+            f"statistics at alpha/{len(calibration.statistics)})",
+            f"rank: {calibration.rank} ({calibration.details.get('rank_rule', 'stored')})",
+            f"q_limit: {limits['q_limit']:.6g}", f"t2_limit: {limits['t2_limit']:.6g}",
+            f"local_limit: {limits['local_limit'] if limits['local_limit'] is None else round(limits['local_limit'], 4)}",
+            "", CAUTION, ""]))
+        written.append(str(summary))
+    if n_flagged and maps_done[0] < n_flagged and out is not None:
+        _warn(args, f"overlays written for the first {maps_done[0]} of {n_flagged} flagged "
+                    "images (raise --max-overlays for more)")
+
+    _say(args, f"screened {len(rows)} images ({mode} mode, limits {calibration.method}, "
+               f"rank {calibration.rank}, alpha {args.alpha:g}): {n_flagged} flagged")
+    shown = [r for r in rows if r["reasons"]][:20]
+    for r in shown:
+        ratio = {"Q": r["q"] / limits["q_limit"], "T2": r["t2"] / limits["t2_limit"],
+                 "local": (r["local"] / limits["local_limit"]) if limits["local_limit"]
+                 else float("nan")}
+        why = ", ".join(f"{k} {ratio[k]:.1f}x limit" for k in r["reasons"])
+        _say(args, f"  {r['path']}: {why}; peak row {r['peak'][0]} col {r['peak'][1]}, "
+                   f"box rows {r['box'][0]}-{r['box'][2] - 1} cols {r['box'][1]}-"
+                   f"{r['box'][3] - 1}")
+    if n_flagged > len(shown):
+        _say(args, f"  ... and {n_flagged - len(shown)} more"
+                   + (f" (see {out / 'screen.csv'})" if out else " (use -o DIR for the CSV)"))
+    if calibration.method == "analytic":
+        _warn(args, "textbook limits from the reference's training eigenvalues: with far "
+                    "more pixels than images they flag too many good frames")
+    for path in written:
+        _say(args, f"wrote {path}")
+    _say(args, CAUTION)
+    _emit_json(args, {
+        "alpha": args.alpha, "rank": calibration.rank, "mode": mode,
+        "limits_method": calibration.method, **limits,
+        "rank_rule": calibration.details.get("rank_rule"),
+        "images": [{"path": r["path"], "q": r["q"], "t2": r["t2"],
+                    "local": r["local"] if math.isfinite(r["local"]) else None,
+                    "flagged": bool(r["reasons"]), "reasons": r["reasons"],
+                    "peak": r["peak"], "box": r["box"]} for r in rows],
+        "flagged": n_flagged,
+        "rejected": [{"path": p, "reason": why} for p, why in rejected],
+        "written": written, "seconds": round(seconds, 3), "caution": CAUTION,
+    })
+    return EXIT_FLAGGED if args.fail_on_flag and n_flagged else EXIT_OK
+
+
+def _add_screen(sub):
+    p = sub.add_parser("screen", help="flag frames that do not fit and show where",
+                       description="Score each image by Q (squared residual), Hotelling's "
+                                   "T^2 and a local residual statistic against limits "
+                                   "calibrated on images the basis did not see; write "
+                                   "screen.csv, a control chart and an overlay of the "
+                                   "residual map for each flagged image.",
+                       epilog=_EXAMPLES["screen"], formatter_class=_Formatter)
+    _source_options(p)
+    g = p.add_argument_group("model and limits")
+    g.add_argument("--reference", metavar="DIR", default=None,
+                   help="folder of known-good images of the same setup (read with the same "
+                        "options as SRC): limits by k-fold over them")
+    g.add_argument("--basis", "-b", metavar="BASIS.npz", default=None,
+                   help="basis to screen with (it must not have been fitted on SRC)")
+    g.add_argument("--rank", type=_positive_int, default=None, metavar="K",
+                   help="components kept (default: Gavish-Donoho noise floor of the "
+                        "reference, at most 50 and a quarter of its images)")
+    g.add_argument("--alpha", type=_alpha_type, default=0.01, metavar="A",
+                   help="aimed-at false-alarm rate per good image (default 0.01)")
+    g.add_argument("--limits", choices=("heldout", "analytic"), default="heldout",
+                   help="heldout: Box/Gumbel fits to k-fold held-out values (default); "
+                        "analytic: Jackson-Mudholkar and F limits from the reference's "
+                        "eigenvalues (textbook; flags too many frames when pixels far "
+                        "outnumber images)")
+    g.add_argument("--folds", type=_positive_int, default=5, metavar="N",
+                   help="k of the k-fold calibration (default 5)")
+    g.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    o = p.add_argument_group("outputs")
+    o.add_argument("-o", "--output", metavar="DIR", default=None,
+                   help="folder for screen.csv, control_chart.png, summary.txt and "
+                        "flagged/*.png overlays (created if missing)")
+    o.add_argument("--save-basis", metavar="FILE.npz", default=None,
+                   help="save the screening basis with its limits, for later runs with "
+                        "--basis FILE.npz (one streamed pass, no recalibration)")
+    o.add_argument("--overwrite", action="store_true",
+                   help="replace an existing --save-basis file")
+    o.add_argument("--max-overlays", type=int, default=1000, metavar="N",
+                   help="overlay PNGs for at most N flagged images (default 1000)")
+    o.add_argument("--chunk", type=_positive_int, default=256, metavar="N",
+                   help="images read and scored at a time when streaming (default 256)")
+    o.add_argument("--fail-on-flag", action="store_true",
+                   help="exit with status 3 when any image is flagged (for pipelines)")
+    _common(p)
+    p.set_defaults(handler=_cmd_screen)
+
+
 def _cmd_demo(args):
     from .demo import run_demo
 
@@ -413,6 +696,23 @@ _EXAMPLES = {
   imgreduce choose line3/good/ --target-psnr 38
   imgreduce choose line3/batch-0412/ --basis line3.npz --target-ssim 0.95 -o choice/
   imgreduce choose scans/ --variance 0.9 --json""",
+    "screen": """examples:
+  imgreduce screen line3/batch-0412/ --reference line3/good/ -o screened/
+  imgreduce screen line3/batch-0412/ --reference line3/good/ --save-basis line3-screen.npz
+  imgreduce screen line3/batch-0413/ --basis line3-screen.npz --fail-on-flag --json
+  imgreduce screen line3/batch-0412/ -o screened/          (no reference: robust self-fit)
+
+modes (printed in the output as "mode"):
+  reference  --reference DIR: limits from k-fold over known-good images; the screening
+             basis is fitted on all of them (or is --basis B, checked against them)
+  basis      --basis B carrying limits from an earlier run (--save-basis): one streamed
+             pass over SRC, bounded memory
+  batch      --basis B without limits: limits from SRC itself, scored by B, trimmed
+  self       neither: basis and limits from SRC itself, trimmed robustly (a batch with
+             up to about 10% defective frames)
+
+Screening is an aid to inspection, not an acceptance decision: confirm flagged frames,
+audit a sample of passed ones, validate detection on known defects before relying on it.""",
     "demo": """examples:
   imgreduce demo
   imgreduce demo -o /tmp/imgreduce-demo --json""",
@@ -518,7 +818,7 @@ def _add_demo(sub):
 
 
 # Each entry adds one sub-command; keep the order of DESIGN.md.
-_COMMANDS = [_add_fit, _add_show, _add_rebuild, _add_choose, _add_demo]
+_COMMANDS = [_add_fit, _add_show, _add_rebuild, _add_choose, _add_screen, _add_demo]
 
 
 def get_parser():

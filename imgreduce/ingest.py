@@ -37,7 +37,8 @@ import numpy as np
 from ._progress import progress_bar
 from .errors import InputError, ParameterError
 
-__all__ = ["ImageStack", "Rejected", "read_images", "parse_size", "IMAGE_SUFFIXES"]
+__all__ = ["ImageStack", "Rejected", "read_images", "find_images", "parse_size",
+           "IMAGE_SUFFIXES"]
 
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".tif", ".tiff", ".bmp", ".webp")
 _TIFF = (".tif", ".tiff")
@@ -178,6 +179,23 @@ def _collect(src, recursive):
         else:
             files.append(path)
     return files
+
+
+def find_images(src, *, recursive=False):
+    """The image files `src` names, in natural order, without reading them.
+
+    For streaming large sets: pass slices of this list to :func:`read_images`.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> folder = pathlib.Path(tempfile.mkdtemp())
+    >>> for name in ("b10.png", "b9.png", "notes.txt"):
+    ...     _ = (folder / name).write_bytes(b"")
+    >>> [p.name for p in find_images(folder)]
+    ['b9.png', 'b10.png']
+    """
+    return _collect(src, recursive)
 
 
 @dataclass
@@ -323,7 +341,7 @@ def _describe_groups(groups, label, total):
 
 
 def read_images(src, *, color=None, size=None, recursive=False, strict=False, bits=None,
-                workers=None, progress=False, out=None, max_pixels=None):
+                workers=None, progress=False, out=None, max_pixels=None, min_images=2):
     """Read same-size images into an :class:`ImageStack`.
 
     Parameters
@@ -350,6 +368,8 @@ def read_images(src, *, color=None, size=None, recursive=False, strict=False, bi
         than memory) instead of holding it in memory. The file must not exist.
     max_pixels : int, optional
         Refuse files whose header claims more pixels (default 2**28).
+    min_images : int
+        Fewest usable images accepted (2: a basis needs two; screening a chunk takes 1).
 
     Returns
     -------
@@ -451,7 +471,7 @@ def read_images(src, *, color=None, size=None, recursive=False, strict=False, bi
         pixels = pixels[:len(keep)]
         rejected += [Rejected(str(good[i][0]), failures[i]) for i in sorted(failures)]
         good = [good[i] for i in keep]
-    if len(good) < 2:
+    if len(good) < min_images:
         extra = f" ({len(rejected)} other file(s) skipped)" if rejected else ""
         raise InputError(f"only {len(good)} usable image{extra}; a basis needs at least 2 "
                          "images of the same setup")

@@ -10,7 +10,8 @@ import numpy as np
 from ._files import atomic_path
 
 __all__ = ["plot_mean_image", "plot_components", "plot_spectrum", "save_figure",
-           "plot_rebuild_panel", "plot_quality_curves", "plot_rank_strip"]
+           "plot_rebuild_panel", "plot_quality_curves", "plot_rank_strip",
+           "plot_control_chart", "residual_overlay"]
 
 DIVERGING = "RdBu_r"
 
@@ -241,3 +242,126 @@ def plot_rank_strip(originals, reconstructions, labels, *, rank):
             ax.set_yticks([])
     fig.suptitle(f"Held-out images rebuilt at the chosen rank {rank}", fontsize=10)
     return fig
+
+
+def plot_control_chart(q, t2, local, limits, *, flagged=None, title=None, note=None):
+    """Q, T^2 and the local statistic in acquisition order, with their limits.
+
+    Parameters
+    ----------
+    q, t2, local : array_like, shape (m,)
+        Per-image statistics (`local` may be all NaN when not in use).
+    limits : dict
+        ``q_limit``, ``t2_limit``, ``local_limit`` (None when not in use).
+    flagged : array_like of bool, optional
+        Images drawn as red crosses.
+    title : str, optional
+    note : str, optional
+        Small print under the chart (a caution, say).
+
+    Examples
+    --------
+    >>> fig = plot_control_chart([1, 2, 9], [2, 3, 1], [1, 1, 1],
+    ...                          {"q_limit": 5, "t2_limit": 4, "local_limit": 3},
+    ...                          flagged=[False, False, True])
+    >>> len(fig.axes)
+    3
+    """
+    series = [("Q (squared residual)", np.asarray(q, float), limits.get("q_limit")),
+              ("T$^2$ (inside the model)", np.asarray(t2, float), limits.get("t2_limit")),
+              ("local (largest z of the residual map)", np.asarray(local, float),
+               limits.get("local_limit"))]
+    series = [s for s in series if s[2] is not None and np.isfinite(s[1]).any()]
+    n = len(series[0][1])
+    flagged = np.zeros(n, bool) if flagged is None else np.asarray(flagged, bool)
+    fig = _figure(10.5, 2.3 * len(series) + 0.8)
+    axes = fig.subplots(len(series), 1, sharex=True, squeeze=False)[:, 0]
+    x = np.arange(1, n + 1)
+    small = n > 2000
+    for ax, (label, values, limit) in zip(axes, series):
+        positive = values[np.isfinite(values) & (values > 0)]
+        log = len(positive) and positive.max() / max(positive.min(), 1e-300) > 50
+        ax.plot(x, values, color="tab:blue", lw=0.6 if not small else 0.3, alpha=0.8)
+        ax.plot(x[~flagged], values[~flagged], ".", color="tab:blue", ms=2 if small else 3)
+        over = flagged & (values > limit)
+        ax.plot(x[flagged & ~over], values[flagged & ~over], "x", color="0.45", ms=4,
+                label="flagged by another statistic")
+        ax.plot(x[over], values[over], "x", color="tab:red", ms=6, mew=1.5,
+                label="over this limit")
+        ax.axhline(limit, color="tab:red", ls="--", lw=1, label=f"limit {limit:.4g}")
+        if log:
+            ax.set_yscale("log")
+        ax.set_ylabel(label, fontsize=8)
+        ax.grid(True, alpha=0.3)
+        ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0))
+    axes[-1].set_xlabel("image, in acquisition (file name) order")
+    if note:
+        import textwrap
+
+        fig.supxlabel(textwrap.fill(note, 150), fontsize=6.5, color="0.35")
+    axes[0].set_title(title or f"Control chart: {int(flagged.sum())} of {n} images flagged")
+    return fig
+
+
+def residual_overlay(image, score_map, *, box=None, peak=None, limit=None, scale=None):
+    """The frame in grey with the residual map over it, as an RGB uint8 array.
+
+    Pixels of the map above ``limit / 2`` (or, without a limit, above a robust background
+    level) are tinted from yellow to red by their score, the box drawn in cyan and the
+    peak marked; elsewhere the frame shows through, so the defect is seen in place.
+    Small frames are enlarged by an integer factor (`scale`, default: to about 512
+    pixels wide) with nearest-neighbour pixels, so nothing is smoothed away.
+
+    Parameters
+    ----------
+    image : ndarray, (h, w) or (h, w, 3), values in [0, 1]
+    score_map : ndarray, (h, w)
+    box : [row0, col0, row1, col1], optional (end exclusive)
+    peak : [row, col], optional
+    limit : float, optional
+        The local statistic's limit, for the colour scale.
+
+    Examples
+    --------
+    >>> img = np.full((8, 8), 0.5); m = np.zeros((8, 8)); m[2, 3] = 9.0
+    >>> out = residual_overlay(img, m, box=[1, 2, 4, 5], peak=[2, 3], limit=4.0, scale=2)
+    >>> out.shape, out.dtype.name
+    ((16, 16, 3), 'uint8')
+    """
+    from matplotlib import colormaps
+
+    img = np.asarray(image, dtype=np.float32)
+    gray = img @ np.array([0.299, 0.587, 0.114], np.float32) if img.ndim == 3 else img
+    base = np.repeat(np.clip(gray, 0, 1)[..., None], 3, axis=2)
+    m = np.asarray(score_map, dtype=np.float32)
+    if limit is None or not np.isfinite(limit):
+        med = float(np.median(m))
+        low = med + 6 * 1.4826 * float(np.median(np.abs(m - med)))
+        high = max(float(m.max()), low * 1.01 + 1e-12)
+    else:
+        low, high = 0.5 * float(limit), max(float(m.max()), 1.5 * float(limit))
+    weight = np.clip((m - low) / max(high - low, 1e-12), 0, 1)
+    colour = colormaps["autumn_r"](weight)[..., :3].astype(np.float32)
+    alpha = np.where(m > low, 0.35 + 0.5 * weight, 0.0)[..., None]
+    out = base * (1 - alpha) + colour * alpha
+    h, w = m.shape
+    if scale is None:
+        scale = max(1, min(8, 512 // max(w, 1)))
+    out = np.repeat(np.repeat(out, scale, axis=0), scale, axis=1)
+    rgb = (np.clip(out, 0, 1) * 255 + 0.5).astype(np.uint8)
+    if box is not None:
+        r0, c0, r1, c1 = (int(v) * scale for v in box)
+        r1, c1 = min(r1, h * scale) - 1, min(c1, w * scale) - 1
+        cyan = np.array([0, 230, 255], np.uint8)
+        for t in range(max(1, scale // 2)):
+            rgb[max(r0 - t, 0), c0:c1 + 1] = cyan
+            rgb[min(r1 + t, h * scale - 1), c0:c1 + 1] = cyan
+            rgb[r0:r1 + 1, max(c0 - t, 0)] = cyan
+            rgb[r0:r1 + 1, min(c1 + t, w * scale - 1)] = cyan
+    if peak is not None:
+        pr, pc = (int(v) * scale + scale // 2 for v in peak)
+        arm = max(3, 2 * scale)
+        white = np.array([255, 255, 255], np.uint8)
+        rgb[max(pr - arm, 0):pr + arm + 1, min(pc, w * scale - 1)] = white
+        rgb[min(pr, h * scale - 1), max(pc - arm, 0):pc + arm + 1] = white
+    return rgb
