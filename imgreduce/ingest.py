@@ -473,8 +473,9 @@ def read_images(src, *, color=None, size=None, recursive=False, strict=False, bi
         good = [good[i] for i in keep]
     if len(good) < min_images:
         extra = f" ({len(rejected)} other file(s) skipped)" if rejected else ""
-        raise InputError(f"only {len(good)} usable image{extra}; a basis needs at least 2 "
-                         "images of the same setup")
+        need = ("a basis needs at least 2 images of the same setup" if min_images >= 2
+                else "nothing to read")
+        raise InputError(f"only {len(good)} usable image{extra}; {need}")
     rejected.sort(key=lambda r: _natural_key(r.path))
     return ImageStack(pixels=pixels, paths=[str(f) for f, _ in good],
                       image_shape=image_shape, bit_depth=depth, color=kind,

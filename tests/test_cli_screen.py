@@ -1,0 +1,151 @@
+"""screen through the command line: modes, outputs, streaming, refusals."""
+
+import csv
+import json
+import shutil
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from imgreduce.cli import main
+from imgreduce.demo import demo_images_path
+
+DEMO = demo_images_path()
+
+
+def _run(capsys, *argv):
+    code = main([str(a) for a in argv])
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def _flags(doc):
+    return {i["path"].split("/")[-1]: i["reasons"] for i in doc["images"] if i["flagged"]}
+
+
+def test_reference_mode_outputs_and_json(tmp_path, capsys):
+    out = tmp_path / "out"
+    code, stdout, err = _run(capsys, "screen", DEMO / "batch", "--reference",
+                             DEMO / "reference", "-o", out, "--json")
+    assert code == 0, err
+    doc = json.loads(stdout)
+    for key in ("alpha", "rank", "q_limit", "t2_limit", "images", "mode", "caution"):
+        assert key in doc
+    assert doc["mode"] == "reference" and doc["alpha"] == 0.01 and len(doc["images"]) == 60
+    image = doc["images"][4]  # part_0005: a scratch
+    assert set(image) >= {"path", "q", "t2", "flagged", "reasons", "peak", "box"}
+    assert image["flagged"] and len(image["peak"]) == 2 and len(image["box"]) == 4
+    assert all(i["peak"] is None and i["box"] is None for i in doc["images"] if not i["flagged"])
+    with open(out / "screen.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert list(rows[0])[:7] == ["path", "q", "q_limit", "t2", "t2_limit", "local",
+                                 "local_limit"]
+    assert len(rows) == 60 and sum(r["flagged"] == "1" for r in rows) == doc["flagged"]
+    assert (out / "control_chart.png").stat().st_size > 10_000
+    assert len(list((out / "flagged").glob("*.png"))) == doc["flagged"]
+    assert "aid to inspection" in (out / "summary.txt").read_text()
+    assert "aid to inspection" in err
+
+
+def test_saved_basis_streams_with_the_same_result(tmp_path, capsys):
+    saved = tmp_path / "screen.npz"
+    code, first, err = _run(capsys, "screen", DEMO / "batch", "--reference", DEMO / "reference",
+                            "--save-basis", saved, "--json")
+    assert code == 0, err
+    code, again, err = _run(capsys, "screen", DEMO / "batch", "--basis", saved, "--chunk", "7",
+                            "--json")
+    assert code == 0, err
+    first, again = json.loads(first), json.loads(again)
+    assert again["mode"] == "basis"
+    assert _flags(again) == _flags(first)
+    assert again["q_limit"] == pytest.approx(first["q_limit"])
+    # A stored calibration is not silently re-ranked.
+    code, _, err = _run(capsys, "screen", DEMO / "batch", "--basis", saved, "--rank", "5")
+    assert code == 1 and "calibrated at rank" in err
+
+
+def test_fail_on_flag_exits_3(capsys):
+    code, _, _ = _run(capsys, "screen", DEMO / "batch", "--reference", DEMO / "reference",
+                      "--fail-on-flag", "-q")
+    assert code == 3
+
+
+def test_self_and_batch_modes(tmp_path, capsys):
+    code, stdout, err = _run(capsys, "screen", DEMO / "batch", "--json")
+    assert code == 0, err
+    doc = json.loads(stdout)
+    assert doc["mode"] == "self" and doc["flagged"] >= 4
+    assert "part_0035.png" in _flags(doc)  # the part shifted on the belt
+    basis = tmp_path / "plain.npz"
+    assert _run(capsys, "fit", DEMO / "reference", "-o", basis, "--rank", "30", "-q")[0] == 0
+    code, stdout, err = _run(capsys, "screen", DEMO / "batch", "--basis", basis, "--json")
+    assert code == 0, err
+    doc = json.loads(stdout)
+    assert doc["mode"] == "batch" and "part_0047.png" in _flags(doc)
+
+
+def test_mismatched_basis_is_refused_naming_both_sides(tmp_path, capsys):
+    basis = tmp_path / "small.npz"
+    assert _run(capsys, "fit", DEMO / "reference", "-o", basis, "--size", "64x48", "-q")[0] == 0
+    code, _, err = _run(capsys, "screen", DEMO / "batch", "--basis", basis)
+    assert code == 1
+    assert "128x96" in err and "64x48" in err and "Traceback" not in err
+
+
+@pytest.mark.parametrize("argv, message", [
+    (["--limits", "analytic"], "needs --reference"),
+    (["--reference", str(DEMO / "batch")], "is the folder being screened"),
+    (["--reference", str(DEMO / "nowhere")], "no such file"),
+])
+def test_refusals(argv, message, capsys):
+    code, _, err = _run(capsys, "screen", DEMO / "batch", *argv)
+    assert code == 1 and message in err and "Traceback" not in err
+
+
+def test_bad_alpha_is_a_usage_error(capsys):
+    with pytest.raises(SystemExit) as exc:
+        main(["screen", str(DEMO / "batch"), "--alpha", "2"])
+    assert exc.value.code == 2 and "--alpha" in capsys.readouterr().err
+
+
+def test_save_basis_does_not_overwrite(tmp_path, capsys):
+    saved = tmp_path / "keep.npz"
+    saved.write_bytes(b"precious")
+    code, _, err = _run(capsys, "screen", DEMO / "batch", "--reference", DEMO / "reference",
+                        "--save-basis", saved)
+    assert code == 1 and "--overwrite" in err
+    assert saved.read_bytes() == b"precious"
+
+
+def test_unreadable_file_in_a_streamed_batch_is_skipped_and_listed(tmp_path, capsys):
+    batch = tmp_path / "batch"
+    shutil.copytree(DEMO / "batch", batch)
+    (batch / "part_0100.png").write_bytes(b"not a png")
+    saved = tmp_path / "s.npz"
+    assert _run(capsys, "screen", DEMO / "reference", "--save-basis", saved, "-q")[0] in (0,)
+    code, stdout, err = _run(capsys, "screen", batch, "--basis", saved, "--json", "--chunk", "16")
+    assert code == 0, err
+    doc = json.loads(stdout)
+    assert len(doc["images"]) == 60
+    assert [r["path"].split("/")[-1] for r in doc["rejected"]] == ["part_0100.png"]
+    assert "part_0100.png" in err
+
+
+def test_rgb_images_screen_end_to_end(tmp_path, capsys):
+    rng = np.random.default_rng(0)
+    base = rng.uniform(60, 190, (24, 32, 3))
+    for name, n in (("ref", 40), ("batch", 25)):
+        (tmp_path / name).mkdir()
+        for i in range(n):
+            img = base + rng.normal(0, 3, base.shape)
+            if name == "batch" and i == 7:
+                img[10:14, 20:24, 0] += 90
+            Image.fromarray(np.clip(img, 0, 255).astype(np.uint8)).save(
+                tmp_path / name / f"f_{i:03d}.png")
+    code, stdout, err = _run(capsys, "screen", tmp_path / "batch", "--reference",
+                             tmp_path / "ref", "-o", tmp_path / "out", "--json")
+    assert code == 0, err
+    doc = json.loads(stdout)
+    hit = doc["images"][7]
+    assert hit["flagged"] and 9 <= hit["peak"][0] <= 14 and 19 <= hit["peak"][1] <= 24
