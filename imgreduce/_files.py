@@ -60,12 +60,13 @@ def write_bytes(path, data):
         tmp.write_bytes(data)
 
 
-def write_image(path, image, *, bit_depth=8):
+def write_image(path, image, *, bit_depth=8, compress_level=6):
     """Write a float image in [0, 1] (clipped) as an 8- or 16-bit file, atomically.
 
     Gray ``(h, w)`` and 8-bit RGB ``(h, w, 3)`` images are written as PNG; 16-bit RGB as
     TIFF (PNG writers at hand keep only 8 bits of colour), so `path` must end in .tif
-    for it. Values are rounded to the nearest integer level: writing what
+    for it. `compress_level` (0-9, zlib) trades PNG size for speed; it never changes
+    the pixels. Values are rounded to the nearest integer level: writing what
     :func:`imgreduce.ingest.read_images` read gives back identical files.
 
     Examples
@@ -100,4 +101,4 @@ def write_image(path, image, *, bit_depth=8):
     if image.ndim not in (2, 3) or (image.ndim == 3 and image.shape[2] != 3):
         raise ParameterError(f"expected an (h, w) or (h, w, 3) image, got shape {image.shape}")
     with atomic_path(path, suffix=".png") as tmp:
-        Image.fromarray(levels).save(tmp, format="PNG")
+        Image.fromarray(levels).save(tmp, format="PNG", compress_level=compress_level)

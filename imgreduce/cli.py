@@ -415,7 +415,14 @@ def _read_reference(args):
 
 
 def _screen_chunks(args, basis, calibration, files, sink):
-    """Read SRC `files` chunk by chunk and screen each; return rejected files."""
+    """Read SRC `files` chunk by chunk and screen each; return rejected files.
+
+    The next chunk is decoded in a background thread while the current one is scored
+    (decoding and the numpy kernels both release the GIL), so memory holds at most two
+    chunks of images.
+    """
+    from concurrent.futures import ThreadPoolExecutor
+
     from ._progress import progress_bar
     from .errors import InputError
     from .ingest import read_images
@@ -424,22 +431,28 @@ def _screen_chunks(args, basis, calibration, files, sink):
     screener = Screener(basis, calibration)
     rejected = []
     what = f"the images in {' '.join(args.src)}"
+    parts = [files[i:i + args.chunk] for i in range(0, len(files), args.chunk)]
+
+    def read(part):
+        try:
+            return read_images(part, min_images=1, **{**_reading(args), "recursive": False})
+        except InputError as exc:
+            if "usable image" not in str(exc):
+                raise
+            return None
+
     with progress_bar(_progress(args), total=len(files), desc="screening",
-                      unit="img") as bar:
-        for start in range(0, len(files), args.chunk):
-            part = files[start:start + args.chunk]
-            try:
-                stack = read_images(part, min_images=1, **{**_reading(args),
-                                                           "recursive": False})
-            except InputError as exc:
-                if "usable image" not in str(exc):
-                    raise
+                      unit="img") as bar, ThreadPoolExecutor(1) as pool:
+        pending = pool.submit(read, parts[0]) if parts else None
+        for k, part in enumerate(parts):
+            stack = pending.result()
+            pending = pool.submit(read, parts[k + 1]) if k + 1 < len(parts) else None
+            if stack is None:
                 rejected += [(str(p), "could not be read") for p in part]
-                bar.update(len(part))
-                continue
-            rejected += [(r.path, r.reason) for r in stack.rejected]
-            basis.check_compatible(stack, what=what)
-            sink(stack, screener.screen(stack.pixels))
+            else:
+                rejected += [(r.path, r.reason) for r in stack.rejected]
+                basis.check_compatible(stack, what=what)
+                sink(stack, screener.screen(stack.pixels))
             bar.update(len(part))
     return rejected
 
@@ -495,7 +508,7 @@ def _cmd_screen(args):
             overlay_dir.mkdir(exist_ok=True)
             img = residual_overlay(stack.images(i), chunk["maps"][i], box=chunk["box"][i],
                                    peak=chunk["peak"][i], limit=calibration.local_limit)
-            write_image(overlay_dir / f"{name}.png", img / 255.0)
+            write_image(overlay_dir / f"{name}.png", img / 255.0, compress_level=1)
             maps_done[0] += 1
 
     if args.reference:
@@ -644,8 +657,11 @@ def _add_screen(sub):
                         "reference, at most 50 and a quarter of its images)")
     g.add_argument("--alpha", type=_alpha_type, default=0.01, metavar="A",
                    help="aimed-at false-alarm rate per good image (default 0.01)")
-    g.add_argument("--limits", choices=("heldout", "analytic"), default="heldout",
-                   help="heldout: Box/Gumbel fits to k-fold held-out values (default); "
+    g.add_argument("--limits", choices=("heldout", "box", "analytic"), default="heldout",
+                   help="heldout (default): Box/Gumbel fits to k-fold held-out values, "
+                        "scaled so that held-out good frames exceed them at rate alpha; "
+                        "box: the same fits at alpha/3 each, unscaled (more sensitive, "
+                        "more false alarms when good frames vary in non-Gaussian ways); "
                         "analytic: Jackson-Mudholkar and F limits from the reference's "
                         "eigenvalues (textbook; flags too many frames when pixels far "
                         "outnumber images)")

@@ -43,7 +43,7 @@ from .errors import ParameterError
 __all__ = [
     "box_limit", "box_limit_from_eigenvalues", "jackson_mudholkar_limit",
     "t2_limit_new", "t2_limit_reference", "gumbel_limit", "scores", "Calibration",
-    "calibrate", "calibrate_on_batch", "Screener", "ScreenResult", "screen_images",
+    "calibrate", "calibrate_on_batch", "conformal_scale", "Screener", "ScreenResult", "screen_images",
     "screen_batch", "residual_map", "locate_defect", "choose_screening_rank", "CAUTION",
 ]
 
@@ -51,6 +51,7 @@ CAUTION = ("Screening is an aid to inspection, not an acceptance decision: confi
            "frames, audit a sample of passed ones, validate detection on known defects "
            "before relying on it, and follow the quality procedures that apply.")
 _CHUNK_ROWS = 256
+_MAP_ROWS = 64  # rows whose maps are held at once while screening
 
 
 # -- limits ------------------------------------------------------------------------------
@@ -364,8 +365,9 @@ class Calibration:
         Per-pixel mean and variance of good images' smoothed residual energy (held out);
         they turn a residual map into normal scores (None with ``'analytic'`` limits).
     method : str
-        ``'heldout'`` (k-fold over a reference set), ``'batch'`` (the screened batch itself,
-        trimmed) or ``'analytic'`` (textbook limits from training eigenvalues).
+        ``'heldout'`` or ``'box'`` (k-fold over a reference set), ``'batch'`` (the
+        screened batch itself, trimmed) or ``'analytic'`` (textbook limits from training
+        eigenvalues).
     sigma : float
         Smoothing of the residual maps, in pixels.
     reference : dict
@@ -452,6 +454,50 @@ def _limits_from(q, t2, local, alpha):
             gumbel_limit(local, level) if use_local else float("inf"))
 
 
+def conformal_scale(excess, alpha):
+    """Factor on the limits so that held-out good images exceed any at rate <= alpha.
+
+    `excess` holds, per held-out good image, its largest ratio of statistic to limit.
+    The ``ceil((n + 1)(1 - alpha))``-th smallest value is the split-conformal quantile
+    (Vovk, Gammerman & Shafer 2005; Lei et al., JASA 113, 2018): a new good image
+    exchangeable with them exceeds it with probability at most alpha, whatever the
+    statistics' distribution. None when ``n < 1 / alpha - 1`` (too few images for that
+    quantile).
+
+    Examples
+    --------
+    >>> conformal_scale(np.arange(1, 201) / 100, 0.01)  # 199th of 200 values
+    1.99
+    >>> conformal_scale(np.ones(50), 0.01) is None
+    True
+    """
+    excess = np.sort(np.asarray(excess, dtype=np.float64))
+    n = len(excess)
+    k = int(np.ceil((n + 1) * (1 - alpha)))
+    if k > n or n == 0:
+        return None
+    return float(excess[k - 1])
+
+
+def _heldout_limits(q, t2, local, alpha):
+    """Limits from held-out good images: parametric shapes, a distribution-free level.
+
+    Box (Q, T^2) and Gumbel (local) laws at ``alpha / 3`` each give the limits' shape;
+    with enough images all three are then scaled by one :func:`conformal_scale` so that
+    the rate of held-out images over any limit is alpha. The parametric tails alone
+    are too light when good frames vary in ways that are not Gaussian (sub-pixel
+    placement, say): measured 2-3x alpha on such sets.
+    """
+    limits = np.array(_limits_from(q, t2, local, alpha))
+    values = [q, t2] + ([local] if np.isfinite(limits[2]) else [])
+    excess = np.max([np.asarray(v) / lim for v, lim in zip(values, limits)], axis=0)
+    scale = conformal_scale(excess, alpha)
+    info = {"limit_scale": scale, "level": "conformal" if scale else "parametric"}
+    if scale is not None:
+        limits = limits * scale
+    return float(limits[0]), float(limits[1]), float(limits[2]), info
+
+
 def _fold_bases(pixels, rank, folds, seed, image_shape, power_iterations=2):
     """k-fold assignment and one basis per fold, each fitted without its fold."""
     from .basis import fit_basis
@@ -522,9 +568,13 @@ def calibrate(reference, *, rank=None, alpha=0.01, folds=5, seed=0, limits="held
     folds : int
         k of the k-fold held-out scoring.
     seed : int
-    limits : {'heldout', 'analytic'}
-        ``'heldout'``: Box's g chi2_h fitted to the mean and variance of held-out Q and
-        T^2, a Gumbel law to the held-out local maxima. ``'analytic'``: Jackson-Mudholkar
+    limits : {'heldout', 'box', 'analytic'}
+        ``'box'``: Box's g chi2_h fitted to the mean and variance of held-out Q and T^2,
+        a Gumbel law to the held-out local maxima, each at ``alpha / 3``. ``'heldout'``
+        (default): the same shapes, all scaled by one split-conformal factor
+        (:func:`conformal_scale`) so that held-out good images exceed some limit at rate
+        alpha, whatever their distribution; needs at least ``1 / alpha - 1`` reference
+        images, else it is ``'box'`` (``details['level']`` says which). ``'analytic'``: Jackson-Mudholkar
         on the residual eigenvalues of `reference` and the F-based T^2 limit, Q and T^2
         only; textbook, but with far more pixels than images the training eigenvalues
         understate new images' residuals and the limits flag too many good frames.
@@ -547,8 +597,8 @@ def calibrate(reference, *, rank=None, alpha=0.01, folds=5, seed=0, limits="held
     alpha = _check_alpha(alpha)
     pixels, image_shape = _as_pixels(reference, image_shape)
     n = len(pixels)
-    if limits not in ("heldout", "analytic"):
-        raise ParameterError(f"limits must be 'heldout' or 'analytic', got {limits!r}")
+    if limits not in ("heldout", "box", "analytic"):
+        raise ParameterError(f"limits must be 'heldout', 'box' or 'analytic', got {limits!r}")
     if isinstance(folds, bool) or not isinstance(folds, (int, np.integer)) or folds < 2:
         raise ParameterError(f"folds must be a whole number >= 2, got {folds!r}")
     if n < 10:
@@ -559,12 +609,16 @@ def calibrate(reference, *, rank=None, alpha=0.01, folds=5, seed=0, limits="held
         rank, _ = choose_screening_rank(pixels, seed=seed)
         rule = "gavish-donoho"
     details = {"reference_images": n, "rank_rule": rule}
-    if limits == "heldout":
+    if limits in ("heldout", "box"):
         q, t2, energy, rank = _heldout(pixels, image_shape, rank, folds, seed, sigma)
         local, (mean, var) = _local_from_energy(energy, keep=np.ones(n, bool))
-        q_lim, t2_lim, local_lim = _limits_from(q, t2, local, alpha)
-        details["folds"] = int(min(folds, n))
-        return Calibration(rank, alpha, q_lim, t2_lim, local_lim, mean, var, "heldout",
+        if limits == "heldout":
+            q_lim, t2_lim, local_lim, info = _heldout_limits(q, t2, local, alpha)
+        else:
+            q_lim, t2_lim, local_lim = _limits_from(q, t2, local, alpha)
+            info = {"limit_scale": None, "level": "parametric"}
+        details.update(info, folds=int(min(folds, n)))
+        return Calibration(rank, alpha, q_lim, t2_lim, local_lim, mean, var, limits,
                            sigma, {"q": q, "t2": t2, "local": local}, details)
     from .quality import data_spectrum
 
@@ -720,8 +774,8 @@ class Screener:
         c = self.calibration
         out = {"q": [], "t2": [], "local": [], "reasons": [], "peak": [], "box": [],
                "maps": {}}
-        for start in range(0, len(pixels), _CHUNK_ROWS):
-            q, t2, e, z = _chunk_stats(self.basis, c.rank, pixels[start:start + _CHUNK_ROWS],
+        for start in range(0, len(pixels), _MAP_ROWS):
+            q, t2, e, z = _chunk_stats(self.basis, c.rank, pixels[start:start + _MAP_ROWS],
                                        sigma=c.sigma, moments=c.moments)
             local = z.max(axis=1).astype(np.float64) if z is not None else np.full(len(q),
                                                                                    np.nan)
@@ -898,13 +952,14 @@ def screen_images(basis, stack, calibration=None, *, alpha=0.01, maps=True):
     --------
     >>> from imgreduce import fit_basis
     >>> rng = np.random.default_rng(2)
-    >>> good = rng.normal(size=(100, 64)).astype(np.float32)
-    >>> cal = calibrate(good, rank=3, image_shape=(8, 8))
-    >>> basis = fit_basis(good, rank=3); basis.image_shape = (8, 8)
-    >>> batch = rng.normal(size=(20, 64)).astype(np.float32); batch[5, 10] += 12
+    >>> good = rng.normal(size=(100, 256)).astype(np.float32)
+    >>> cal = calibrate(good, rank=3, image_shape=(16, 16))
+    >>> basis = fit_basis(good, rank=3); basis.image_shape = (16, 16)
+    >>> batch = rng.normal(size=(20, 256)).astype(np.float32)
+    >>> batch[5, 16 * 9 + 6] += 15  # a spike at row 9, column 6 of image 5
     >>> result = screen_images(basis, batch, cal)
-    >>> [i for i, r in enumerate(result.reasons) if r]
-    [5]
+    >>> bool(result.flagged[5]), result.peak[5]
+    (True, [9, 6])
     """
     if hasattr(stack, "pixels"):
         basis.check_compatible(stack)

@@ -33,7 +33,7 @@ def test_reference_mode_outputs_and_json(tmp_path, capsys):
     for key in ("alpha", "rank", "q_limit", "t2_limit", "images", "mode", "caution"):
         assert key in doc
     assert doc["mode"] == "reference" and doc["alpha"] == 0.01 and len(doc["images"]) == 60
-    image = doc["images"][4]  # part_0005: a scratch
+    image = doc["images"][17]  # part_0018: a missing hole
     assert set(image) >= {"path", "q", "t2", "flagged", "reasons", "peak", "box"}
     assert image["flagged"] and len(image["peak"]) == 2 and len(image["box"]) == 4
     assert all(i["peak"] is None and i["box"] is None for i in doc["images"] if not i["flagged"])

@@ -47,6 +47,13 @@ def test_run_demo_writes_basis_and_figures(tmp_path):
     names = sorted(p.name for p in (tmp_path / "out").iterdir())
     assert names == ["basis.npz", "components.png", "mean.png", "quality_curves.png",
                      "rebuild_part_0005.png", "rebuild_part_0012.png",
-                     "rebuild_part_0024.png", "spectrum.png"]
+                     "rebuild_part_0024.png", "screen", "spectrum.png"]
     assert result["images"] == 120 and 1 <= result["rank"] <= 60
+    # Measured: all 9 defective frames flagged, 3 of 51 good ones, at alpha 0.02.
+    screen = result["screen"]
+    assert screen["defective_caught"] == screen["defective"] == 9
+    assert screen["false_alarms"] <= 4
+    shots = sorted(p.name for p in (tmp_path / "out" / "screen").iterdir())
+    assert "control_chart.png" in shots and "screen.csv" in shots
+    assert len([n for n in shots if n.startswith("flagged_")]) == screen["flagged"]
     assert any("wrote" in line for line in lines)
