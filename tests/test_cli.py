@@ -135,4 +135,6 @@ def test_demo_command(tmp_path, capsys):
     code, out, err = _run(capsys, "demo", "-o", str(tmp_path / "d"), "--json")
     assert code == 0
     doc = json.loads(out)
-    assert doc["images"] == 120 and len(doc["written"]) == 8
+    # basis, 7 figures, the control chart, screen.csv and one overlay per flagged frame
+    assert doc["images"] == 120
+    assert len(doc["written"]) == 10 + doc["screen"]["flagged"]
