@@ -486,6 +486,15 @@ def _cmd_screen(args):
     stored = Calibration.from_basis(basis) if basis is not None else None
     files = find_images(args.src if len(args.src) > 1 else args.src[0],
                         recursive=args.recursive)
+    if basis is not None and basis.metadata.get("source_digest") and not args.reference:
+        import hashlib
+
+        digest = hashlib.sha256("\n".join(str(p) for p in files).encode()).hexdigest()
+        if digest == basis.metadata["source_digest"]:
+            raise ParameterError(
+                f"{args.basis} was fitted on these very images: their residuals are shrunk "
+                "and their scores would look better than new frames'. Screen other "
+                "images, add --reference DIR of known-good ones, or leave --basis out")
 
     rows, maps_done, written = [], [0], []
     flagged_paths, rejected = [], []

@@ -149,3 +149,10 @@ def test_rgb_images_screen_end_to_end(tmp_path, capsys):
     doc = json.loads(stdout)
     hit = doc["images"][7]
     assert hit["flagged"] and 9 <= hit["peak"][0] <= 14 and 19 <= hit["peak"][1] <= 24
+
+
+def test_a_basis_fitted_on_the_batch_itself_is_refused(tmp_path, capsys):
+    basis = tmp_path / "own.npz"
+    assert _run(capsys, "fit", DEMO / "batch", "-o", basis, "--rank", "10", "-q")[0] == 0
+    code, _, err = _run(capsys, "screen", DEMO / "batch", "--basis", basis)
+    assert code == 1 and "fitted on these very images" in err
