@@ -11,6 +11,8 @@ from .basis import EigenBasis, fit_basis  # noqa: E402
 from .errors import (BasisFileError, ImgreduceError, InputError,  # noqa: E402
                      ModelMismatchError, ParameterError)
 from .ingest import ImageStack, read_images  # noqa: E402
+from .screen import (Calibration, ScreenResult, calibrate, screen_batch,  # noqa: E402
+                     screen_images)
 
 __all__ = [
     "__version__",
@@ -18,6 +20,11 @@ __all__ = [
     "fit_basis",
     "ImageStack",
     "read_images",
+    "calibrate",
+    "Calibration",
+    "screen_images",
+    "screen_batch",
+    "ScreenResult",
     "ImgreduceError",
     "InputError",
     "ParameterError",
