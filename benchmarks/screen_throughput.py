@@ -79,13 +79,17 @@ def main():
         assert cli(argv + [str(tmp / "out2")]) == 0
         _, peak = tracemalloc.get_traced_memory()
         tracemalloc.stop()
-        rows = (tmp / "out" / "screen.csv").read_text().splitlines()[1:]
-        flagged = sum(r.split(",")[7] == "1" for r in rows)
+        rows = [r.split(",") for r in (tmp / "out" / "screen.csv").read_text().splitlines()[1:]]
+        spot = [int(Path(r[0]).stem[-5:]) % 100 == 50 for r in rows]
+        flagged = sum(r[7] == "1" for r in rows)
+        caught = sum(r[7] == "1" for r, s in zip(rows, spot) if s)
+        false_alarms = sum(r[7] == "1" for r, s in zip(rows, spot) if not s)
         matrix = n * 128 * 128 * 4
         print(f"{n} frames of 128x128, basis rank from the reference, chunks of 256")
         print(f"  read only    {read_s:7.2f} s  {n / read_s:8.0f} frames/s")
         print(f"  screen       {screen_s:7.2f} s  {n / screen_s:8.0f} frames/s  "
-              f"({flagged} flagged; {n // 100} spots drawn)")
+              f"({flagged} flagged: {caught} of {sum(spot)} frames with a spot, "
+              f"{false_alarms} of {n - sum(spot)} good ones)")
         print(f"  ratio        {screen_s / read_s:7.2f}   screen / read")
         print(f"  peak memory  {peak / 2**20:7.1f} MiB added while screening, "
               f"{peak / matrix:.3f}x the batch as a float32 matrix "

@@ -458,8 +458,6 @@ def _screen_chunks(args, basis, calibration, files, sink):
 
 
 def _cmd_screen(args):
-    import numpy as np
-
     from ._files import write_image, write_text
     from .basis import fit_basis
     from .ingest import find_images
@@ -604,7 +602,8 @@ def _cmd_screen(args):
             f"statistics at alpha/{len(calibration.statistics)})",
             f"rank: {calibration.rank} ({calibration.details.get('rank_rule', 'stored')})",
             f"q_limit: {limits['q_limit']:.6g}", f"t2_limit: {limits['t2_limit']:.6g}",
-            f"local_limit: {limits['local_limit'] if limits['local_limit'] is None else round(limits['local_limit'], 4)}",
+            "local_limit: " + ("not used" if limits["local_limit"] is None
+                               else f"{limits['local_limit']:.6g}"),
             "", CAUTION, ""]))
         written.append(str(summary))
     if n_flagged and maps_done[0] < n_flagged and out is not None:

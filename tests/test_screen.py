@@ -12,8 +12,9 @@ from imgreduce import EigenBasis, fit_basis, read_images
 from imgreduce.demo import demo_images_path
 from imgreduce.errors import ParameterError
 from imgreduce.screen import (Calibration, box_limit, box_limit_from_eigenvalues, calibrate,
-                              conformal_scale, gumbel_limit, jackson_mudholkar_limit, locate_defect, scores,
-                              screen_batch, screen_images, t2_limit_new, t2_limit_reference)
+                              conformal_scale, gumbel_limit, jackson_mudholkar_limit,
+                              locate_defect, scores, screen_batch, screen_images,
+                              t2_limit_new, t2_limit_reference)
 
 sys.path.insert(0, str(Path(__file__).parent))
 from screen_sets import SHAPE, Batch, line_set, photo_set, score  # noqa: E402
