@@ -225,7 +225,9 @@ def _ranks_type(text):
 
 
 def _finite(value, digits=4):
-    """A float for JSON/CSV: rounded, and None where it is infinite or undefined."""
+    """A float for JSON/CSV: rounded, and None where it is missing, infinite or undefined."""
+    if value is None:
+        return None
     value = float(value)
     return round(value, digits) if math.isfinite(value) else None
 
@@ -624,6 +626,12 @@ def _cmd_screen(args):
     if n_flagged > len(shown):
         _say(args, f"  ... and {n_flagged - len(shown)} more"
                    + (f" (see {out / 'screen.csv'})" if out else " (use -o DIR for the CSV)"))
+    if calibration.method == "heldout" and calibration.details.get("level") == "parametric":
+        need = math.ceil(1 / args.alpha - 1)
+        _warn(args, f"{calibration.details.get('reference_images')} reference images are too "
+                    f"few to set the limits' level at alpha {args.alpha:g} (that needs "
+                    f"{need}): plain Box/Gumbel limits are used, and good frames may be "
+                    "flagged at 2-3 times alpha; add known-good images or raise --alpha")
     if calibration.method == "analytic":
         _warn(args, "textbook limits from the reference's training eigenvalues: with far "
                     "more pixels than images they flag too many good frames")
@@ -634,6 +642,7 @@ def _cmd_screen(args):
         "alpha": args.alpha, "rank": calibration.rank, "mode": mode,
         "limits_method": calibration.method, **limits,
         "rank_rule": calibration.details.get("rank_rule"),
+        "limit_scale": calibration.details.get("limit_scale"),
         "images": [{"path": r["path"], "q": r["q"], "t2": r["t2"],
                     "local": r["local"] if math.isfinite(r["local"]) else None,
                     "flagged": bool(r["reasons"]), "reasons": r["reasons"],

@@ -156,3 +156,17 @@ def test_a_basis_fitted_on_the_batch_itself_is_refused(tmp_path, capsys):
     assert _run(capsys, "fit", DEMO / "batch", "-o", basis, "--rank", "10", "-q")[0] == 0
     code, _, err = _run(capsys, "screen", DEMO / "batch", "--basis", basis)
     assert code == 1 and "fitted on these very images" in err
+
+
+def test_analytic_limits_through_the_cli(tmp_path, capsys):
+    code, stdout, err = _run(capsys, "screen", DEMO / "batch", "--reference", DEMO / "reference",
+                             "--limits", "analytic", "-o", tmp_path / "out", "--json")
+    assert code == 0, err
+    doc = json.loads(stdout)
+    assert doc["limits_method"] == "analytic" and doc["local_limit"] is None
+    assert all(i["local"] is None for i in doc["images"])
+    assert "flag too many good frames" in err
+    with open(tmp_path / "out" / "screen.csv", newline="") as fh:
+        row = next(csv.DictReader(fh))
+    assert row["local"] == "" and row["local_limit"] == ""
+    assert "not used" in (tmp_path / "out" / "summary.txt").read_text()
