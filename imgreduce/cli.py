@@ -453,7 +453,8 @@ def _screen_chunks(args, basis, calibration, files, sink):
                 rejected += [(str(p), "could not be read") for p in part]
             else:
                 rejected += [(r.path, r.reason) for r in stack.rejected]
-                basis.check_compatible(stack, what=what)
+                basis.check_compatible(stack, what=f"{what} (from {stack.paths[0]} on)"
+                                       if k else what)
                 sink(stack, screener.screen(stack.pixels))
             bar.update(len(part))
     return rejected

@@ -170,3 +170,33 @@ def test_analytic_limits_through_the_cli(tmp_path, capsys):
         row = next(csv.DictReader(fh))
     assert row["local"] == "" and row["local_limit"] == ""
     assert "not used" in (tmp_path / "out" / "summary.txt").read_text()
+
+
+def test_colour_and_depth_mismatches_are_refused(tmp_path, capsys):
+    saved = tmp_path / "s.npz"
+    assert _run(capsys, "screen", DEMO / "batch", "--reference", DEMO / "reference",
+                "--save-basis", saved, "-q")[0] == 0
+    rgb, deep = tmp_path / "rgb", tmp_path / "deep"
+    rgb.mkdir()
+    deep.mkdir()
+    for i, src in enumerate(sorted((DEMO / "batch").glob("*.png"))[:3]):
+        gray = np.asarray(Image.open(src))
+        Image.fromarray(np.dstack([gray] * 3)).save(rgb / f"c{i}.png")
+        Image.fromarray(gray.astype(np.uint16) * 257).save(deep / f"d{i}.png")
+    code, _, err = _run(capsys, "screen", rgb, "--basis", saved)
+    assert code == 1 and "colour" in err and "--color gray" in err
+    code, _, err = _run(capsys, "screen", deep, "--basis", saved)
+    assert code == 1 and "bit depth" in err and "16" in err and "8" in err
+
+
+def test_a_later_chunk_of_another_size_names_where_it_starts(tmp_path, capsys):
+    saved = tmp_path / "s.npz"
+    assert _run(capsys, "screen", DEMO / "batch", "--reference", DEMO / "reference",
+                "--save-basis", saved, "-q")[0] == 0
+    batch = tmp_path / "batch"
+    batch.mkdir()
+    for src in sorted((DEMO / "batch").glob("*.png"))[:4]:
+        shutil.copy(src, batch / src.name)
+    Image.fromarray(np.zeros((50, 60), np.uint8)).save(batch / "z_small.png")
+    code, _, err = _run(capsys, "screen", batch, "--basis", saved, "--chunk", "4")
+    assert code == 1 and "z_small.png" in err and "60x50" in err
