@@ -8,7 +8,8 @@ its limits (``screen --reference ... --save-basis``), then times:
 - reading the batch alone, chunk by chunk as screening does (``read_images`` on 256 files
   at a time): the reference time, measured in the same run;
 - ``imgreduce screen BATCH --basis SAVED -o OUT`` (one streamed pass: read, Q, T^2, local
-  map, overlays for flagged frames, CSV, control chart).
+  map, overlays for flagged frames, CSV, control chart);
+- the same with a basis saved with ``--align`` (each frame aligned first).
 
 Prints frames per second of both, their ratio (screen / read; 1.0 would mean screening
 costs nothing beyond reading), and the peak memory the screening added (tracemalloc, numpy
@@ -79,6 +80,17 @@ def main():
         assert cli(argv + [str(tmp / "out2")]) == 0
         _, peak = tracemalloc.get_traced_memory()
         tracemalloc.stop()
+        # The same with --align (a separate saved basis; alignment adds its own cost).
+        aligned = tmp / "aligned.npz"
+        assert cli(["screen", str(tmp / "batch" / "frame_00000.png"), "--reference",
+                    str(tmp / "reference"), "--align", "--save-basis", str(aligned),
+                    "-q"]) == 0
+        t0 = time.perf_counter()
+        assert cli(["screen", str(tmp / "batch"), "--basis", str(aligned), "-q", "-o",
+                    str(tmp / "out3")]) == 0
+        align_s = time.perf_counter() - t0
+        rows_a = [r.split(",") for r in
+                  (tmp / "out3" / "screen.csv").read_text().splitlines()[1:]]
         rows = [r.split(",") for r in (tmp / "out" / "screen.csv").read_text().splitlines()[1:]]
         spot = [int(Path(r[0]).stem[-5:]) % 100 == 50 for r in rows]
         flagged = sum(r[7] == "1" for r in rows)
@@ -91,6 +103,11 @@ def main():
               f"({flagged} flagged: {caught} of {sum(spot)} frames with a spot, "
               f"{false_alarms} of {n - sum(spot)} good ones)")
         print(f"  ratio        {screen_s / read_s:7.2f}   screen / read")
+        caught_a = sum(r[7] == "1" for r, s in zip(rows_a, spot) if s)
+        false_a = sum(r[7] == "1" for r, s in zip(rows_a, spot) if not s)
+        print(f"  --align      {align_s:7.2f} s  {n / align_s:8.0f} frames/s  "
+              f"({caught_a} of {sum(spot)} spots, {false_a} good frames flagged)  "
+              f"ratio {align_s / read_s:.2f}")
         print(f"  peak memory  {peak / 2**20:7.1f} MiB added while screening, "
               f"{peak / matrix:.3f}x the batch as a float32 matrix "
               f"({matrix / 2**20:.0f} MiB)")

@@ -469,6 +469,12 @@ def _cmd_screen(args):
                          screen_batch)
 
     started = time.perf_counter()
+    if args.align and not args.reference:
+        raise ParameterError("--align needs --reference DIR: the template and the placement "
+                             "limits come from known-good frames (a basis saved by "
+                             "'--reference DIR --align --save-basis' aligns by itself)")
+    if args.align and args.limits == "analytic":
+        raise ParameterError("--align works with --limits heldout or box, not analytic")
     if args.limits == "analytic" and not args.reference:
         raise ParameterError("--limits analytic needs --reference DIR (the textbook limits "
                              "come from the reference images' eigenvalues)")
@@ -504,9 +510,14 @@ def _cmd_screen(args):
 
     def sink(stack, chunk):
         for i, path in enumerate(stack.paths):
+            shift = chunk.get("shift")
             rows.append({"path": path, "q": float(chunk["q"][i]), "t2": float(chunk["t2"][i]),
                          "local": float(chunk["local"][i]), "reasons": chunk["reasons"][i],
-                         "peak": chunk["peak"][i], "box": chunk["box"][i]})
+                         "peak": chunk["peak"][i], "box": chunk["box"][i],
+                         "shift": None if shift is None else [round(float(v), 3)
+                                                              for v in shift[i]],
+                         "shift_d2": (None if shift is None
+                                      else float(chunk["shift_d2"][i]))})
             if not chunk["reasons"][i]:
                 continue
             flagged_paths.append(path)
@@ -531,8 +542,13 @@ def _cmd_screen(args):
 
             rank = min(choose_screening_rank(reference, seed=args.seed)[0], basis.rank)
         calibration = calibrate(reference, rank=rank, alpha=args.alpha, folds=args.folds,
-                                seed=args.seed, limits=args.limits)
+                                seed=args.seed, limits=args.limits, align=args.align)
         if basis is None:
+            if calibration.align:
+                from dataclasses import replace
+
+                aligned, _ = calibration.prepare(reference.pixels, reference.image_shape)
+                reference = replace(reference, pixels=aligned)
             basis = fit_basis(reference, rank=calibration.rank, seed=args.seed)
         mode = "reference"
         calibration.attach(basis)
@@ -579,15 +595,19 @@ def _cmd_screen(args):
 
         csv_path = out / "screen.csv"
         _write_csv(csv_path, ["path", "q", "q_limit", "t2", "t2_limit", "local", "local_limit",
-                              "flagged", "reasons", "peak", "box"],
+                              "flagged", "reasons", "peak", "box", "shift", "shift_d2",
+                              "shift_limit"],
                    [[r["path"], _finite(r["q"], 6), _finite(limits["q_limit"], 6),
                      _finite(r["t2"], 4), _finite(limits["t2_limit"], 4),
                      _finite(r["local"], 3), _finite(limits["local_limit"], 3),
                      int(bool(r["reasons"])), ";".join(r["reasons"]), fmt(r["peak"]),
-                     fmt(r["box"])] for r in rows])
+                     fmt(r["box"]), fmt(r["shift"]), _finite(r["shift_d2"], 3),
+                     _finite(limits["shift_limit"], 3)] for r in rows])
         written.append(str(csv_path))
         fig = plot_control_chart([r["q"] for r in rows], [r["t2"] for r in rows],
                                  [r["local"] for r in rows], limits,
+                                 shift=([r["shift_d2"] for r in rows] if calibration.align
+                                        else None),
                                  flagged=[bool(r["reasons"]) for r in rows],
                                  title=f"{n_flagged} of {len(rows)} images flagged "
                                        f"(alpha {args.alpha:g}, rank {calibration.rank}, "
@@ -607,6 +627,9 @@ def _cmd_screen(args):
             f"q_limit: {limits['q_limit']:.6g}", f"t2_limit: {limits['t2_limit']:.6g}",
             "local_limit: " + ("not used" if limits["local_limit"] is None
                                else f"{limits['local_limit']:.6g}"),
+            "aligned: " + ("no" if not calibration.align else
+                           f"yes, shift_limit {limits['shift_limit']:.6g} (squared "
+                           "Mahalanobis distance from the reference frames' shifts)"),
             "", CAUTION, ""]))
         written.append(str(summary))
     if n_flagged and maps_done[0] < n_flagged and out is not None:
@@ -619,11 +642,15 @@ def _cmd_screen(args):
     for r in shown:
         ratio = {"Q": r["q"] / limits["q_limit"], "T2": r["t2"] / limits["t2_limit"],
                  "local": (r["local"] / limits["local_limit"]) if limits["local_limit"]
+                 else float("nan"),
+                 "shift": (r["shift_d2"] / limits["shift_limit"]) if limits["shift_limit"]
                  else float("nan")}
         why = ", ".join(f"{k} {ratio[k]:.1f}x limit" for k in r["reasons"])
+        moved = (f"; moved {r['shift'][0]:+.2f}, {r['shift'][1]:+.2f} px (rows, cols) to "
+                 "align" if r["shift"] is not None else "")
         _say(args, f"  {r['path']}: {why}; peak row {r['peak'][0]} col {r['peak'][1]}, "
                    f"box rows {r['box'][0]}-{r['box'][2] - 1} cols {r['box'][1]}-"
-                   f"{r['box'][3] - 1}")
+                   f"{r['box'][3] - 1}{moved}")
     if n_flagged > len(shown):
         _say(args, f"  ... and {n_flagged - len(shown)} more"
                    + (f" (see {out / 'screen.csv'})" if out else " (use -o DIR for the CSV)"))
@@ -644,10 +671,12 @@ def _cmd_screen(args):
         "limits_method": calibration.method, **limits,
         "rank_rule": calibration.details.get("rank_rule"),
         "limit_scale": calibration.details.get("limit_scale"),
+        "aligned": calibration.align,
         "images": [{"path": r["path"], "q": r["q"], "t2": r["t2"],
                     "local": r["local"] if math.isfinite(r["local"]) else None,
                     "flagged": bool(r["reasons"]), "reasons": r["reasons"],
-                    "peak": r["peak"], "box": r["box"]} for r in rows],
+                    "peak": r["peak"], "box": r["box"], "shift": r["shift"],
+                    "shift_d2": r["shift_d2"]} for r in rows],
         "flagged": n_flagged,
         "rejected": [{"path": p, "reason": why} for p, why in rejected],
         "written": written, "seconds": round(seconds, 3), "caution": CAUTION,
@@ -683,6 +712,11 @@ def _add_screen(sub):
                         "analytic: Jackson-Mudholkar and F limits from the reference's "
                         "eigenvalues (textbook; flags too many frames when pixels far "
                         "outnumber images)")
+    g.add_argument("--align", action="store_true",
+                   help="move every frame onto the reference's mean by sub-pixel "
+                        "translation before scoring, and screen the translation itself "
+                        "(reason 'shift'); for parts that land a little differently under "
+                        "a fixed camera (needs --reference; a saved basis keeps it)")
     g.add_argument("--folds", type=_positive_int, default=5, metavar="N",
                    help="k of the k-fold calibration (default 5)")
     g.add_argument("--seed", type=int, default=0, help="random seed (default 0)")

@@ -244,7 +244,8 @@ def plot_rank_strip(originals, reconstructions, labels, *, rank):
     return fig
 
 
-def plot_control_chart(q, t2, local, limits, *, flagged=None, title=None, note=None):
+def plot_control_chart(q, t2, local, limits, *, flagged=None, title=None, note=None,
+                       shift=None):
     """Q, T^2 and the local statistic in acquisition order, with their limits.
 
     Parameters
@@ -258,6 +259,9 @@ def plot_control_chart(q, t2, local, limits, *, flagged=None, title=None, note=N
     title : str, optional
     note : str, optional
         Small print under the chart (a caution, say).
+    shift : array_like, optional
+        Squared Mahalanobis distance of each frame's alignment shift, drawn against
+        ``limits['shift_limit']`` (aligned screening).
 
     Examples
     --------
@@ -271,6 +275,9 @@ def plot_control_chart(q, t2, local, limits, *, flagged=None, title=None, note=N
               ("T$^2$ (inside the model)", np.asarray(t2, float), limits.get("t2_limit")),
               ("local (largest z of the residual map)", np.asarray(local, float),
                limits.get("local_limit"))]
+    if shift is not None:
+        series.append(("shift (placement distance$^2$)", np.asarray(shift, float),
+                       limits.get("shift_limit")))
     series = [s for s in series if s[2] is not None and np.isfinite(s[1]).any()]
     n = len(series[0][1])
     flagged = np.zeros(n, bool) if flagged is None else np.asarray(flagged, bool)

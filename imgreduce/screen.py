@@ -14,6 +14,11 @@ For each image, with scores ``t = V (x - mean)`` on the first k components:
   far above its neighbourhood here. Its limit is a Gumbel law (the extreme-value law of
   maxima of light-tailed fields) matched by moments to held-out maxima.
 
+- **shift** (with ``align=True``): frames are first moved onto the reference's mean by
+  sub-pixel translation (:mod:`imgreduce.align`), and the squared Mahalanobis distance
+  of that translation from the reference frames' own is screened: a part that landed
+  far off its usual place.
+
 **Limits are calibrated on images the basis did not see.** With far more pixels than
 images, a basis fits part of its training images' noise: their residuals are shrunk, and
 limits computed from training residuals or training eigenvalues flag nearly every new good
@@ -25,8 +30,9 @@ Ann. Math. Statist. 25(2), 1954, as used by Nomikos & MacGregor, Technometrics 3
 F-based limit for a new observation's T^2) are available as ``limits='analytic'``.
 
 An image is flagged when any statistic exceeds its limit. Each of the m statistics in use
-gets ``alpha / m`` (Bonferroni), so that ``alpha`` is the rate of false alarms per good
-image the limits aim at, not per statistic.
+gets ``alpha / m`` (Bonferroni), and with enough reference images one split-conformal
+factor then scales all limits so that held-out good images exceed any at rate alpha:
+``alpha`` is the rate of false alarms per good image, not per statistic.
 
 Screening is an aid to inspection, not an acceptance decision: confirm flagged frames,
 audit a sample of passed ones, validate detection on known defects before relying on it,
@@ -394,11 +400,41 @@ class Calibration:
     sigma: float = 1.5
     reference: dict = field(default_factory=dict)
     details: dict = field(default_factory=dict)
+    align_template: object = None
+    shift_mean: object = None
+    shift_cov: object = None
+    shift_limit: float = float("inf")
+
+    @property
+    def align(self):
+        """Whether frames are aligned to a template before scoring (``--align``)."""
+        return self.align_template is not None
 
     @property
     def statistics(self):
-        """The statistics in use: ``('Q', 'T2', 'local')`` or ``('Q', 'T2')``."""
-        return ("Q", "T2", "local") if np.isfinite(self.local_limit) else ("Q", "T2")
+        """The statistics in use: ``Q``, ``T2``, and ``local`` and ``shift`` when used."""
+        out = ("Q", "T2") + (("local",) if np.isfinite(self.local_limit) else ())
+        return out + (("shift",) if self.align else ())
+
+    def prepare(self, pixels, image_shape):
+        """Rows as this calibration scores them: aligned when it aligns.
+
+        Returns
+        -------
+        rows : ndarray (m, p)
+        shifts : ndarray (m, 2) or None
+        """
+        if not self.align:
+            return pixels, None
+        from .align import apply_shifts, estimate_shifts
+
+        shifts = estimate_shifts(pixels, image_shape, self.align_template)
+        return apply_shifts(pixels, image_shape, shifts), shifts
+
+    def shift_distance(self, shifts):
+        """Squared Mahalanobis distance of shifts from the reference's placement."""
+        d = np.asarray(shifts, dtype=np.float64) - np.asarray(self.shift_mean)
+        return np.einsum("ij,jk,ik->i", d, np.linalg.inv(np.asarray(self.shift_cov)), d)
 
     @property
     def moments(self):
@@ -407,10 +443,11 @@ class Calibration:
         return self.energy_mean, self.energy_var
 
     def limits(self):
-        """``{'q_limit': ..., 't2_limit': ..., 'local_limit': ... or None}``."""
+        """``q_limit``, ``t2_limit``, ``local_limit`` and ``shift_limit`` (None: unused)."""
         local = float(self.local_limit) if np.isfinite(self.local_limit) else None
+        shift = float(self.shift_limit) if self.align else None
         return {"q_limit": float(self.q_limit), "t2_limit": float(self.t2_limit),
-                "local_limit": local}
+                "local_limit": local, "shift_limit": shift}
 
     def attach(self, basis):
         """Store this calibration in `basis`, to be saved and loaded with it."""
@@ -419,9 +456,15 @@ class Calibration:
                                  f"{basis.rank}")
         basis.metadata["screening"] = {
             "rank": int(self.rank), "alpha": float(self.alpha), "method": self.method,
-            "sigma": float(self.sigma), **self.limits(), "details": _jsonable(self.details)}
-        for key in ("screening_energy_mean", "screening_energy_var"):
+            "sigma": float(self.sigma), **self.limits(), "details": _jsonable(self.details),
+            "shift_mean": None if not self.align else np.asarray(self.shift_mean).tolist(),
+            "shift_cov": None if not self.align else np.asarray(self.shift_cov).tolist()}
+        for key in ("screening_energy_mean", "screening_energy_var",
+                    "screening_align_template"):
             basis.extra.pop(key, None)
+        if self.align:
+            basis.extra["screening_align_template"] = np.asarray(self.align_template,
+                                                                 np.float32)
         if self.energy_mean is not None:
             basis.extra["screening_energy_mean"] = np.asarray(self.energy_mean, np.float32)
             basis.extra["screening_energy_var"] = np.asarray(self.energy_var, np.float32)
@@ -438,10 +481,17 @@ class Calibration:
         if local is not None and (mean is None or var is None):
             raise ParameterError("the basis's screening calibration lacks its energy maps "
                                  "(calibrate again with --reference)")
+        template = basis.extra.get("screening_align_template")
+        if meta.get("shift_limit") is not None and template is None:
+            raise ParameterError("the basis's screening calibration aligns frames but lacks "
+                                 "its template (calibrate again with --reference --align)")
         return cls(int(meta["rank"]), float(meta["alpha"]), float(meta["q_limit"]),
                    float(meta["t2_limit"]), float("inf") if local is None else float(local),
                    mean, var, meta.get("method", "heldout"), float(meta.get("sigma", 1.5)),
-                   {}, dict(meta.get("details", {})))
+                   {}, dict(meta.get("details", {})), template,
+                   None if template is None else np.asarray(meta["shift_mean"]),
+                   None if template is None else np.asarray(meta["shift_cov"]),
+                   float("inf") if template is None else float(meta["shift_limit"]))
 
 
 def _jsonable(details):
@@ -487,23 +537,40 @@ def conformal_scale(excess, alpha):
     return float(excess[k - 1])
 
 
-def _heldout_limits(q, t2, local, alpha):
+def _heldout_limits(q, t2, local, alpha, shift_d2=None):
     """Limits from held-out good images: parametric shapes, a distribution-free level.
 
-    Box (Q, T^2) and Gumbel (local) laws at ``alpha / 3`` each give the limits' shape;
-    with enough images all three are then scaled by one :func:`conformal_scale` so that
-    the rate of held-out images over any limit is alpha. The parametric tails alone
-    are too light when good frames vary in ways that are not Gaussian (sub-pixel
-    placement, say): measured 2-3x alpha on such sets.
+    Box (Q, T^2) and Gumbel (local) laws at ``alpha / m`` each (m statistics) give the
+    limits' shape, and for aligned frames the F-based limit of a new observation's
+    squared Mahalanobis distance gives the placement (``shift``) limit's; with enough
+    images all limits are then scaled by one :func:`conformal_scale` so that the rate of
+    held-out images over any limit is alpha. The parametric tails alone are too light
+    when good frames vary in ways that are not Gaussian (sub-pixel placement, say):
+    measured 2-3x alpha on such sets.
+
+    Returns
+    -------
+    q_limit, t2_limit, local_limit, shift_limit, info
     """
-    limits = np.array(_limits_from(q, t2, local, alpha))
+    m = 3 if local is not None and np.isfinite(local).any() else 2
+    m += shift_d2 is not None
+    level = alpha / m
+    box_alpha = level * (m - (shift_d2 is not None))  # what _limits_from splits
+    limits = list(_limits_from(q, t2, local, box_alpha))
     values = [q, t2] + ([local] if np.isfinite(limits[2]) else [])
-    excess = np.max([np.asarray(v) / lim for v, lim in zip(values, limits)], axis=0)
+    used = [limits[0], limits[1]] + ([limits[2]] if np.isfinite(limits[2]) else [])
+    shift_limit = float("inf")
+    if shift_d2 is not None:
+        shift_limit = t2_limit_new(2, len(shift_d2), level)
+        values.append(shift_d2)
+        used.append(shift_limit)
+    excess = np.max([np.asarray(v) / lim for v, lim in zip(values, used)], axis=0)
     scale = conformal_scale(excess, alpha)
     info = {"limit_scale": scale, "level": "conformal" if scale else "parametric"}
     if scale is not None:
-        limits = limits * scale
-    return float(limits[0]), float(limits[1]), float(limits[2]), info
+        limits = [lim * scale for lim in limits]
+        shift_limit *= scale
+    return float(limits[0]), float(limits[1]), float(limits[2]), float(shift_limit), info
 
 
 def _fold_bases(pixels, rank, folds, seed, image_shape, power_iterations=2):
@@ -562,7 +629,7 @@ def _as_pixels(images, image_shape):
 
 
 def calibrate(reference, *, rank=None, alpha=0.01, folds=5, seed=0, limits="heldout",
-              sigma=1.5, image_shape=None):
+              sigma=1.5, image_shape=None, align=False):
     """Control limits from known-good reference images.
 
     Parameters
@@ -591,6 +658,13 @@ def calibrate(reference, *, rank=None, alpha=0.01, folds=5, seed=0, limits="held
         Smoothing of residual maps, in pixels.
     image_shape : tuple, optional
         Needed with an ndarray `reference` for 2-D maps.
+    align : bool
+        Align every frame to the reference's mean by sub-pixel translation before
+        scoring (:mod:`imgreduce.align`), and screen the translation itself as a fourth
+        statistic, ``shift``: the squared Mahalanobis distance of a frame's shift from
+        the reference frames' shifts. For fixed cameras over parts that land a little
+        differently each time. Fit the screening basis on ``calibration.prepare(...)``
+        of the reference, not on the raw frames. Not with ``'analytic'`` limits.
 
     Returns
     -------
@@ -618,17 +692,37 @@ def calibrate(reference, *, rank=None, alpha=0.01, folds=5, seed=0, limits="held
         rank, _ = choose_screening_rank(pixels, seed=seed)
         rule = "gavish-donoho"
     details = {"reference_images": n, "rank_rule": rule}
+    if align and limits == "analytic":
+        raise ParameterError("aligning frames needs held-out limits (--limits heldout or "
+                             "box), not the analytic ones")
+    template = shift_mean = shift_cov = d2 = None
+    if align:
+        from .align import align_rows
+
+        pixels, shifts, template = align_rows(pixels, image_shape)
+        shift_mean, shift_cov = shifts.mean(axis=0), np.cov(shifts.T)
+        if not np.all(np.linalg.eigvalsh(shift_cov) > 1e-8):
+            shift_cov = shift_cov + np.eye(2) * 1e-4  # frames that never move
+        d = shifts - shift_mean
+        d2 = np.einsum("ij,jk,ik->i", d, np.linalg.inv(shift_cov), d)
+        details["shift_sd"] = np.sqrt(np.diag(shift_cov)).round(4).tolist()
     if limits in ("heldout", "box"):
         q, t2, energy, rank = _heldout(pixels, image_shape, rank, folds, seed, sigma)
         local, (mean, var) = _local_from_energy(energy, keep=np.ones(n, bool))
         if limits == "heldout":
-            q_lim, t2_lim, local_lim, info = _heldout_limits(q, t2, local, alpha)
+            q_lim, t2_lim, local_lim, shift_lim, info = _heldout_limits(q, t2, local, alpha,
+                                                                        d2)
         else:
-            q_lim, t2_lim, local_lim = _limits_from(q, t2, local, alpha)
+            m = 3 + (d2 is not None)
+            q_lim, t2_lim, local_lim = _limits_from(q, t2, local, alpha * 3 / m)
+            shift_lim = t2_limit_new(2, n, alpha / m) if align else float("inf")
             info = {"limit_scale": None, "level": "parametric"}
         details.update(info, folds=int(min(folds, n)))
+        ref = {"q": q, "t2": t2, "local": local}
+        if align:
+            ref["shift_d2"] = d2
         return Calibration(rank, alpha, q_lim, t2_lim, local_lim, mean, var, limits,
-                           sigma, {"q": q, "t2": t2, "local": local}, details)
+                           sigma, ref, details, template, shift_mean, shift_cov, shift_lim)
     from .quality import data_spectrum
 
     rank = int(min(rank, n - 1))
@@ -756,8 +850,8 @@ class Screener:
         self.basis, self.calibration = basis, calibration
         self.map_shape = _map_shape(basis.image_shape)
 
-    def judge(self, q, t2, local):
-        """Reasons an image is flagged: a subset of ``['Q', 'T2', 'local']``."""
+    def judge(self, q, t2, local, shift_d2=None):
+        """Reasons an image is flagged: a subset of ``['Q', 'T2', 'local', 'shift']``."""
         c = self.calibration
         reasons = []
         if q > c.q_limit:
@@ -766,34 +860,45 @@ class Screener:
             reasons.append("T2")
         if np.isfinite(c.local_limit) and local > c.local_limit:
             reasons.append("local")
+        if shift_d2 is not None and c.align and shift_d2 > c.shift_limit:
+            reasons.append("shift")
         return reasons
 
     def screen(self, pixels, *, maps=True):
         """Statistics, flags and localisation of a chunk of rows.
 
+        With an aligning calibration each frame is first moved onto the template; its
+        shift is screened too, and peak, box and map are given back in the frame's own
+        coordinates.
+
         Returns
         -------
         dict
             ``q``, ``t2``, ``local`` (arrays; local NaN without energy moments),
+            ``shift`` ((m, 2) array of ``(dy, dx)``, or None) and ``shift_d2``,
             ``reasons``, ``peak``, ``box`` (lists; peak and box None for images not
             flagged) and ``maps`` (index in the chunk -> map of each flagged image, when
             `maps`: normal scores, or smoothed energy without moments).
         """
         pixels = self.basis._pixels(pixels)
         c = self.calibration
-        out = {"q": [], "t2": [], "local": [], "reasons": [], "peak": [], "box": [],
-               "maps": {}}
+        out = {"q": [], "t2": [], "local": [], "shift": [], "shift_d2": [], "reasons": [],
+               "peak": [], "box": [], "maps": {}}
         for start in range(0, len(pixels), _MAP_ROWS):
-            q, t2, e, z = _chunk_stats(self.basis, c.rank, pixels[start:start + _MAP_ROWS],
-                                       sigma=c.sigma, moments=c.moments)
+            rows, shifts = c.prepare(pixels[start:start + _MAP_ROWS], self.basis.image_shape)
+            d2 = c.shift_distance(shifts) if shifts is not None else None
+            q, t2, e, z = _chunk_stats(self.basis, c.rank, rows, sigma=c.sigma,
+                                       moments=c.moments)
             local = z.max(axis=1).astype(np.float64) if z is not None else np.full(len(q),
                                                                                    np.nan)
             shown, fraction = (z, 0.5) if z is not None else (e, 0.25)
             for i in range(len(q)):
-                why = self.judge(q[i], t2[i], local[i])
+                why = self.judge(q[i], t2[i], local[i], None if d2 is None else d2[i])
                 peak = box = None
                 if why:
                     m = shown[i].reshape(self.map_shape)
+                    if shifts is not None:
+                        m = _unshift_map(m, shifts[i])
                     peak, box = locate_defect(m, fraction=fraction)
                     if maps:
                         out["maps"][start + i] = m.copy()
@@ -803,9 +908,21 @@ class Screener:
             out["q"].append(q)
             out["t2"].append(t2)
             out["local"].append(local)
+            if shifts is not None:
+                out["shift"].append(shifts)
+                out["shift_d2"].append(d2)
         for key in ("q", "t2", "local"):
             out[key] = np.concatenate(out[key]) if out[key] else np.empty(0)
+        for key in ("shift", "shift_d2"):
+            out[key] = np.concatenate(out[key]) if out[key] else None
         return out
+
+
+def _unshift_map(score_map, shift):
+    """A map computed on an aligned frame, moved back onto the frame as acquired."""
+    from scipy import ndimage
+
+    return ndimage.shift(score_map, (-shift[0], -shift[1]), order=1, mode="nearest")
 
 
 @dataclass(eq=False)
@@ -829,6 +946,9 @@ class ScreenResult:
         ``'self'`` (basis and limits from the batch itself, trimmed).
     maps : dict
         Index -> residual map (normal scores), for flagged images.
+    shift, shift_d2 : ndarray or None
+        With alignment: each frame's ``(dy, dx)`` onto the template, in pixels, and its
+        squared Mahalanobis distance from the reference frames' shifts.
     """
 
     paths: list
@@ -841,6 +961,8 @@ class ScreenResult:
     calibration: Calibration
     mode: str
     maps: dict = field(default_factory=dict)
+    shift: object = None
+    shift_d2: object = None
 
     @property
     def flagged(self):
@@ -849,7 +971,7 @@ class ScreenResult:
 
     def rows(self):
         """One dict per image: path, q, q_limit, t2, t2_limit, local, local_limit, flagged,
-        reasons, peak, box."""
+        reasons, peak, box, shift, shift_d2, shift_limit."""
         limits = self.calibration.limits()
         out = []
         for i, p in enumerate(self.paths):
@@ -858,14 +980,19 @@ class ScreenResult:
                         "t2": float(self.t2[i]), "t2_limit": limits["t2_limit"],
                         "local": local, "local_limit": limits["local_limit"],
                         "flagged": bool(self.reasons[i]), "reasons": list(self.reasons[i]),
-                        "peak": self.peak[i], "box": self.box[i]})
+                        "peak": self.peak[i], "box": self.box[i],
+                        "shift": (None if self.shift is None
+                                  else [round(float(v), 3) for v in self.shift[i]]),
+                        "shift_d2": (None if self.shift_d2 is None
+                                     else float(self.shift_d2[i])),
+                        "shift_limit": limits["shift_limit"]})
         return out
 
 
 def _result(paths, chunk, calibration, mode):
     return ScreenResult(list(paths), chunk["q"], chunk["t2"], chunk["local"],
                         chunk["reasons"], chunk["peak"], chunk["box"], calibration, mode,
-                        chunk["maps"])
+                        chunk["maps"], chunk.get("shift"), chunk.get("shift_d2"))
 
 
 def _trim(q, t2, local, *, keep, alpha, rounds, cap):

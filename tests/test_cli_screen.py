@@ -200,3 +200,29 @@ def test_a_later_chunk_of_another_size_names_where_it_starts(tmp_path, capsys):
     Image.fromarray(np.zeros((50, 60), np.uint8)).save(batch / "z_small.png")
     code, _, err = _run(capsys, "screen", batch, "--basis", saved, "--chunk", "4")
     assert code == 1 and "z_small.png" in err and "60x50" in err
+
+
+def test_align_through_the_cli_and_a_saved_basis(tmp_path, capsys):
+    saved = tmp_path / "aligned.npz"
+    code, first, err = _run(capsys, "screen", DEMO / "batch", "--reference", DEMO / "reference",
+                            "--align", "--save-basis", saved, "-o", tmp_path / "out", "--json")
+    assert code == 0, err
+    first = json.loads(first)
+    assert first["aligned"] and first["shift_limit"] > 0
+    assert "part_0035.png" in _flags(first) and "shift" in _flags(first)["part_0035.png"]
+    assert all(len(i["shift"]) == 2 for i in first["images"])
+    header = (tmp_path / "out" / "screen.csv").read_text().splitlines()[0]
+    assert header.endswith("shift,shift_d2,shift_limit")
+    code, again, err = _run(capsys, "screen", DEMO / "batch", "--basis", saved, "--json")
+    assert code == 0, err
+    assert _flags(json.loads(again)) == _flags(first)
+
+
+@pytest.mark.parametrize("argv, message", [
+    (["--align"], "--align needs --reference"),
+    (["--align", "--reference", str(DEMO / "reference"), "--limits", "analytic"],
+     "not analytic"),
+])
+def test_align_refusals(argv, message, capsys):
+    code, _, err = _run(capsys, "screen", DEMO / "batch", *argv)
+    assert code == 1 and message in err
