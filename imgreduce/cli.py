@@ -543,6 +543,10 @@ def _cmd_screen(args):
             rank = min(choose_screening_rank(reference, seed=args.seed)[0], basis.rank)
         calibration = calibrate(reference, rank=rank, alpha=args.alpha, folds=args.folds,
                                 seed=args.seed, limits=args.limits, align=args.align)
+        if basis is not None:
+            # The fold bases' eigenvalues describe a basis fitted on this reference; B's
+            # components are its own.
+            calibration.t2_eigenvalues = None
         if basis is None:
             if calibration.align:
                 from dataclasses import replace

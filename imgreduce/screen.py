@@ -256,7 +256,8 @@ def _zscore(energy, mean, var):
     return (np.cbrt(ratio) - (1.0 - a)) / np.sqrt(a)
 
 
-def _chunk_stats(basis, rank, pixels, *, sigma=1.5, moments=None, energy=True):
+def _chunk_stats(basis, rank, pixels, *, sigma=1.5, moments=None, energy=True,
+                 eigenvalues=None):
     """Q, T^2, smoothed energy and (with `moments`) local z-maps of one chunk.
 
     Returns
@@ -268,7 +269,7 @@ def _chunk_stats(basis, rank, pixels, *, sigma=1.5, moments=None, energy=True):
         Normal scores of `e` against `moments` ``(mean, var)``, when given.
     """
     comps = basis.components[:rank]
-    lam = basis.explained_variance[:rank]
+    lam = basis.explained_variance[:rank] if eigenvalues is None else eigenvalues[:rank]
     r = np.subtract(pixels, basis.mean, dtype=np.float32)
     t = r @ comps.T
     r -= t @ comps
@@ -387,6 +388,17 @@ class Calibration:
     reference : dict
         The values the limits were fitted to: arrays ``'q'``, ``'t2'``, ``'local'``.
     details : dict
+    align_template : ndarray or None
+        With alignment: the template frames are moved onto.
+    shift_mean, shift_cov, shift_limit
+        With alignment: the reference frames' shifts and the placement limit.
+    t2_eigenvalues : ndarray (rank,) or None
+        The k-fold bases' eigenvalues, averaged per component. A basis fitted on all n
+        reference images has smaller noise-inflated eigenvalues than bases fitted on
+        (k-1)/k of them, so its T^2 of a new frame runs about 10% above the held-out T^2
+        the limit was fitted to (measured), and the false-alarm rate with it. Scoring new
+        frames with these eigenvalues keeps the two on one scale. Only meaningful for a
+        basis fitted on the same reference; None otherwise.
     """
 
     rank: int
@@ -404,6 +416,7 @@ class Calibration:
     shift_mean: object = None
     shift_cov: object = None
     shift_limit: float = float("inf")
+    t2_eigenvalues: object = None
 
     @property
     def align(self):
@@ -429,7 +442,8 @@ class Calibration:
         from .align import apply_shifts, estimate_shifts
 
         shifts = estimate_shifts(pixels, image_shape, self.align_template)
-        return apply_shifts(pixels, image_shape, shifts), shifts
+        return (apply_shifts(pixels, image_shape, shifts, fill=self.align_template),
+                shifts)
 
     def shift_distance(self, shifts):
         """Squared Mahalanobis distance of shifts from the reference's placement."""
@@ -460,8 +474,11 @@ class Calibration:
             "shift_mean": None if not self.align else np.asarray(self.shift_mean).tolist(),
             "shift_cov": None if not self.align else np.asarray(self.shift_cov).tolist()}
         for key in ("screening_energy_mean", "screening_energy_var",
-                    "screening_align_template"):
+                    "screening_align_template", "screening_t2_eigenvalues"):
             basis.extra.pop(key, None)
+        if self.t2_eigenvalues is not None:
+            basis.extra["screening_t2_eigenvalues"] = np.asarray(self.t2_eigenvalues,
+                                                                 np.float64)
         if self.align:
             basis.extra["screening_align_template"] = np.asarray(self.align_template,
                                                                  np.float32)
@@ -491,7 +508,8 @@ class Calibration:
                    {}, dict(meta.get("details", {})), template,
                    None if template is None else np.asarray(meta["shift_mean"]),
                    None if template is None else np.asarray(meta["shift_cov"]),
-                   float("inf") if template is None else float(meta["shift_limit"]))
+                   float("inf") if template is None else float(meta["shift_limit"]),
+                   basis.extra.get("screening_t2_eigenvalues"))
 
 
 def _jsonable(details):
@@ -595,7 +613,8 @@ def _heldout(pixels, image_shape, rank, folds, seed, sigma):
     """Held-out Q, T^2, smoothed energy of every image (k-fold), and the rank used.
 
     One fold basis at a time is held in memory; the energies (one float32 map per image)
-    are kept for the local statistic.
+    are kept for the local statistic. Also returns the fold bases' eigenvalues, averaged
+    per component (see :attr:`Calibration.t2_eigenvalues`).
     """
     from .basis import fit_basis
 
@@ -607,15 +626,17 @@ def _heldout(pixels, image_shape, rank, folds, seed, sigma):
     q, t2 = np.empty(n), np.empty(n)
     h, w = tuple(image_shape)[:2] if len(image_shape) >= 2 else (1, image_shape[0])
     energy = np.empty((n, h * w), np.float32)
+    lams = []
     for f in range(folds):
         train, test = np.flatnonzero(fold_of != f), np.flatnonzero(fold_of == f)
         b = fit_basis(pixels[train], rank=rank, seed=seed + f)
         b.image_shape = tuple(image_shape)
+        lams.append(b.explained_variance[:rank])
         for start in range(0, len(test), _CHUNK_ROWS):
             rows = test[start:start + _CHUNK_ROWS]
             q[rows], t2[rows], energy[rows], _ = _chunk_stats(b, rank, pixels[rows],
                                                               sigma=sigma)
-    return q, t2, energy, rank
+    return q, t2, energy, rank, np.mean(lams, axis=0)
 
 
 def _as_pixels(images, image_shape):
@@ -707,7 +728,8 @@ def calibrate(reference, *, rank=None, alpha=0.01, folds=5, seed=0, limits="held
         d2 = np.einsum("ij,jk,ik->i", d, np.linalg.inv(shift_cov), d)
         details["shift_sd"] = np.sqrt(np.diag(shift_cov)).round(4).tolist()
     if limits in ("heldout", "box"):
-        q, t2, energy, rank = _heldout(pixels, image_shape, rank, folds, seed, sigma)
+        q, t2, energy, rank, fold_lam = _heldout(pixels, image_shape, rank, folds, seed,
+                                                 sigma)
         local, (mean, var) = _local_from_energy(energy, keep=np.ones(n, bool))
         if limits == "heldout":
             q_lim, t2_lim, local_lim, shift_lim, info = _heldout_limits(q, t2, local, alpha,
@@ -722,7 +744,8 @@ def calibrate(reference, *, rank=None, alpha=0.01, folds=5, seed=0, limits="held
         if align:
             ref["shift_d2"] = d2
         return Calibration(rank, alpha, q_lim, t2_lim, local_lim, mean, var, limits,
-                           sigma, ref, details, template, shift_mean, shift_cov, shift_lim)
+                           sigma, ref, details, template, shift_mean, shift_cov, shift_lim,
+                           fold_lam)
     from .quality import data_spectrum
 
     rank = int(min(rank, n - 1))
@@ -847,6 +870,10 @@ class Screener:
         if mean is not None and len(mean) != int(np.prod(_map_shape(basis.image_shape))):
             raise ParameterError("the calibration's energy maps do not match the basis's "
                                  "image size (calibrate again on images like the basis's)")
+        lam = calibration.t2_eigenvalues
+        if lam is not None and len(lam) < calibration.rank:
+            raise ParameterError("the calibration's T^2 eigenvalues do not match its rank "
+                                 "(calibrate again)")
         self.basis, self.calibration = basis, calibration
         self.map_shape = _map_shape(basis.image_shape)
 
@@ -888,7 +915,7 @@ class Screener:
             rows, shifts = c.prepare(pixels[start:start + _MAP_ROWS], self.basis.image_shape)
             d2 = c.shift_distance(shifts) if shifts is not None else None
             q, t2, e, z = _chunk_stats(self.basis, c.rank, rows, sigma=c.sigma,
-                                       moments=c.moments)
+                                       moments=c.moments, eigenvalues=c.t2_eigenvalues)
             local = z.max(axis=1).astype(np.float64) if z is not None else np.full(len(q),
                                                                                    np.nan)
             shown, fraction = (z, 0.5) if z is not None else (e, 0.25)
@@ -1152,14 +1179,15 @@ def screen_batch(stack, *, rank=None, alpha=0.01, folds=5, seed=0, rounds=3,
     energy = np.empty((n, int(np.prod(_map_shape(image_shape)))), np.float32)
     for round_ in range(rounds + 1):
         kept, out = np.flatnonzero(keep), np.flatnonzero(~keep)
-        q[kept], t2[kept], energy[kept], r = _heldout(pixels[kept], image_shape, rank, folds,
-                                                      seed, sigma)
+        q[kept], t2[kept], energy[kept], r, fold_lam = _heldout(
+            pixels[kept], image_shape, rank, folds, seed, sigma)
         basis = fit_basis(pixels[kept], rank=r, seed=seed)
         basis.image_shape = tuple(image_shape)
         for start in range(0, len(out), _CHUNK_ROWS):
             rows = out[start:start + _CHUNK_ROWS]
             q[rows], t2[rows], energy[rows], _ = _chunk_stats(basis, r, pixels[rows],
-                                                              sigma=sigma)
+                                                              sigma=sigma,
+                                                              eigenvalues=fold_lam)
         local, (mean, var) = _local_from_energy(energy, keep=keep)
         if round_ == rounds:
             break
@@ -1171,7 +1199,7 @@ def screen_batch(stack, *, rank=None, alpha=0.01, folds=5, seed=0, rounds=3,
     calibration = Calibration(r, alpha, q_lim, t2_lim, local_lim, mean, var, "batch", sigma,
                               {"q": q[keep], "t2": t2[keep], "local": local[keep]},
                               {"batch_images": n, "kept": int(keep.sum()), "folds": folds,
-                               "rank_rule": rule})
+                               "rank_rule": rule}, t2_eigenvalues=fold_lam)
     if hasattr(stack, "policy"):
         basis.metadata.update(stack.policy())
     calibration.attach(basis)
