@@ -708,10 +708,7 @@ def calibrate(reference, *, rank=None, alpha=0.01, folds=5, seed=0, limits="held
     if n < 10:
         raise ParameterError(f"calibrating limits needs at least 10 known-good reference "
                              f"images, got {n}; add more (50 or more is better)")
-    rule = "given"
-    if rank is None:
-        rank, _ = choose_screening_rank(pixels, seed=seed)
-        rule = "gavish-donoho"
+    rank, rule = _rank_and_rule(pixels, rank, seed)
     details = {"reference_images": n, "rank_rule": rule}
     if align and limits == "analytic":
         raise ParameterError("aligning frames needs held-out limits (--limits heldout or "
@@ -756,6 +753,13 @@ def calibrate(reference, *, rank=None, alpha=0.01, folds=5, seed=0, limits="held
                    "with far more pixels than images they flag too many good frames")
     return Calibration(rank, alpha, q_limit, t2_limit_new(rank, n, alpha / 2), float("inf"),
                        None, None, "analytic", sigma, {}, details)
+def _rank_and_rule(pixels, rank, seed):
+    """The given rank, or :func:`choose_screening_rank`'s; and which it was."""
+    if rank is not None:
+        return rank, "given"
+    return choose_screening_rank(pixels, seed=seed)[0], "gavish-donoho"
+
+
 def choose_screening_rank(reference, *, max_rank=50, seed=0):
     """Rank for screening when none is given: the Gavish-Donoho noise floor.
 
@@ -1169,10 +1173,7 @@ def screen_batch(stack, *, rank=None, alpha=0.01, folds=5, seed=0, rounds=3,
     if n < 20:
         raise ParameterError(f"screening a batch against itself needs at least 20 images, "
                              f"got {n}; give known-good images with --reference")
-    rule = "given"
-    if rank is None:
-        rank, _ = choose_screening_rank(pixels, seed=seed)
-        rule = "gavish-donoho"
+    rank, rule = _rank_and_rule(pixels, rank, seed)
     keep = np.ones(n, bool)
     cap = max(1, int(max_trim * n))
     q, t2 = np.empty(n), np.empty(n)
