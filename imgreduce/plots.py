@@ -313,7 +313,7 @@ def plot_control_chart(q, t2, local, limits, *, flagged=None, title=None, note=N
 def residual_overlay(image, score_map, *, box=None, peak=None, limit=None, scale=None):
     """The frame in grey with the residual map over it, as an RGB uint8 array.
 
-    Pixels of the map above ``limit / 2`` (or, without a limit, above a robust background
+    Pixels of the map above 0.8 ``limit`` (or, without a limit, above a robust background
     level) are tinted from yellow to red by their score, the box drawn in cyan and the
     peak marked; elsewhere the frame shows through, so the defect is seen in place.
     Small frames are enlarged by an integer factor (`scale`, default: to about 512
@@ -346,7 +346,7 @@ def residual_overlay(image, score_map, *, box=None, peak=None, limit=None, scale
         low = med + 6 * 1.4826 * float(np.median(np.abs(m - med)))
         high = max(float(m.max()), low * 1.01 + 1e-12)
     else:
-        low, high = 0.5 * float(limit), max(float(m.max()), 1.5 * float(limit))
+        low, high = 0.8 * float(limit), max(float(m.max()), 1.5 * float(limit))
     weight = np.clip((m - low) / max(high - low, 1e-12), 0, 1)
     colour = colormaps["autumn_r"](weight)[..., :3].astype(np.float32)
     alpha = np.where(m > low, 0.35 + 0.5 * weight, 0.0)[..., None]
