@@ -770,7 +770,7 @@ _EXAMPLES = {
   imgreduce choose scans/ --variance 0.9 --json""",
     "screen": """examples:
   imgreduce screen line3/batch-0412/ --reference line3/good/ -o screened/
-  imgreduce screen line3/batch-0412/ --reference line3/good/ --save-basis line3-screen.npz
+  imgreduce screen line3/batch-0412/ --reference line3/good/ --align --save-basis line3-screen.npz
   imgreduce screen line3/batch-0413/ --basis line3-screen.npz --fail-on-flag --json
   imgreduce screen line3/batch-0412/ -o screened/          (no reference: robust self-fit)
 
