@@ -182,7 +182,7 @@ def align_rows(rows, image_shape, template=None, *, passes=2, upsample=20):
 
     Without a template, the first pass aligns to the plain mean; each further pass
     aligns the original rows to the mean of the last aligned ones (sharper edges, so
-    better shifts).
+    better shifts); the rows returned are measured against the template returned.
 
     Returns
     -------
@@ -201,6 +201,9 @@ def align_rows(rows, image_shape, template=None, *, passes=2, upsample=20):
         shifts = estimate_shifts(rows, image_shape, template, upsample=upsample)
         aligned = apply_shifts(rows, image_shape, shifts, fill=template)
         template = aligned.mean(axis=0, dtype=np.float64).astype(np.float32)
-    # The last template fills the borders of the rows it returns, as later frames' will.
+    # Measure the returned rows against the returned template, as later frames will be:
+    # shifts measured against an earlier template differ from it by a small common offset
+    # that later frames would not share.
+    shifts = estimate_shifts(rows, image_shape, template, upsample=upsample)
     aligned = apply_shifts(rows, image_shape, shifts, fill=template)
     return aligned, shifts, template

@@ -229,7 +229,7 @@ def test_larger_line_set_recall_and_false_alarms():
 def test_aligned_line_set_meets_the_aim_at_alpha_001():
     # Issue aim: recall >= 0.95 with false alarms <= 3% at alpha 0.01. With the frames
     # aligned by sub-pixel translation first (and the shift screened as a statistic of
-    # its own), measured on the larger line set: recall 27/28, false alarms 5/300,
+    # its own), measured on the larger line set: recall 27/28, false alarms 2/300,
     # peaks inside 15/15; unaligned 16/28 and 3/300 (above).
     reference, batch, kinds, boxes = line_set()
     cal = calibrate(reference, image_shape=SHAPE, align=True)
