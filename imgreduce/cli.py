@@ -460,11 +460,95 @@ def _screen_chunks(args, basis, calibration, files, sink):
     return rejected
 
 
+def _write_screen_files(args, out, rows, calibration, mode, n_flagged):
+    """screen.csv, control_chart.png and summary.txt in `out`; their paths."""
+    from ._files import write_text
+    from .plots import plot_control_chart, save_figure
+    from .screen import CAUTION
+
+    limits = calibration.limits()
+    written = []
+
+    def fmt(pair):
+        return "" if pair is None else " ".join(str(v) for v in pair)
+
+    csv_path = out / "screen.csv"
+    _write_csv(csv_path, ["path", "q", "q_limit", "t2", "t2_limit", "local", "local_limit",
+                          "flagged", "reasons", "peak", "box", "shift", "shift_d2",
+                          "shift_limit"],
+               [[r["path"], _finite(r["q"], 6), _finite(limits["q_limit"], 6),
+                 _finite(r["t2"], 4), _finite(limits["t2_limit"], 4),
+                 _finite(r["local"], 3), _finite(limits["local_limit"], 3),
+                 int(bool(r["reasons"])), ";".join(r["reasons"]), fmt(r["peak"]),
+                 fmt(r["box"]), fmt(r["shift"]), _finite(r["shift_d2"], 3),
+                 _finite(limits["shift_limit"], 3)] for r in rows])
+    written.append(str(csv_path))
+    fig = plot_control_chart([r["q"] for r in rows], [r["t2"] for r in rows],
+                             [r["local"] for r in rows], limits,
+                             shift=([r["shift_d2"] for r in rows] if calibration.align
+                                    else None),
+                             flagged=[bool(r["reasons"]) for r in rows],
+                             title=f"{n_flagged} of {len(rows)} images flagged "
+                                   f"(alpha {args.alpha:g}, rank {calibration.rank}, "
+                                   f"mode {mode})", note=CAUTION)
+    chart = out / "control_chart.png"
+    save_figure(fig, chart)
+    written.append(str(chart))
+    summary = out / "summary.txt"
+    write_text(summary, "\n".join([
+        f"imgreduce {__version__} screen: {len(rows)} images, {n_flagged} flagged",
+        f"mode: {mode} (limits: {calibration.method})",
+        f"alpha: {args.alpha:g} per good image (each of {len(calibration.statistics)} "
+        f"statistics at alpha/{len(calibration.statistics)})",
+        f"rank: {calibration.rank} ({calibration.details.get('rank_rule', 'stored')})",
+        f"q_limit: {limits['q_limit']:.6g}", f"t2_limit: {limits['t2_limit']:.6g}",
+        "local_limit: " + ("not used" if limits["local_limit"] is None
+                           else f"{limits['local_limit']:.6g}"),
+        "aligned: " + ("no" if not calibration.align else
+                       f"yes, shift_limit {limits['shift_limit']:.6g} (squared "
+                       "Mahalanobis distance from the reference frames' shifts)"),
+        "", CAUTION, ""]))
+    written.append(str(summary))
+    return written
+
+
+def _say_screen(args, rows, calibration, mode, out, n_flagged):
+    """The console summary of a screening run: counts, flagged frames, warnings."""
+    limits = calibration.limits()
+    _say(args, f"screened {len(rows)} images ({mode} mode, limits {calibration.method}, "
+               f"rank {calibration.rank}, alpha {args.alpha:g}): {n_flagged} flagged")
+    shown = [r for r in rows if r["reasons"]][:20]
+    for r in shown:
+        ratio = {"Q": r["q"] / limits["q_limit"], "T2": r["t2"] / limits["t2_limit"],
+                 "local": (r["local"] / limits["local_limit"]) if limits["local_limit"]
+                 else float("nan"),
+                 "shift": (r["shift_d2"] / limits["shift_limit"]) if limits["shift_limit"]
+                 else float("nan")}
+        why = ", ".join(f"{k} {ratio[k]:.1f}x limit" for k in r["reasons"])
+        moved = (f"; moved {r['shift'][0]:+.2f}, {r['shift'][1]:+.2f} px (rows, cols) to "
+                 "align" if r["shift"] is not None else "")
+        _say(args, f"  {r['path']}: {why}; peak row {r['peak'][0]} col {r['peak'][1]}, "
+                   f"box rows {r['box'][0]}-{r['box'][2] - 1} cols {r['box'][1]}-"
+                   f"{r['box'][3] - 1}{moved}")
+    if n_flagged > len(shown):
+        _say(args, f"  ... and {n_flagged - len(shown)} more"
+                   + (f" (see {out / 'screen.csv'})" if out else " (use -o DIR for the CSV)"))
+    if calibration.method == "heldout" and calibration.details.get("level") == "parametric":
+        need = math.ceil(1 / args.alpha - 1)
+        _warn(args, f"{calibration.details.get('reference_images')} reference images are too "
+                    f"few to set the limits' level at alpha {args.alpha:g} (that needs "
+                    f"{need}): plain Box/Gumbel limits are used, and good frames may be "
+                    "flagged at 2-3 times alpha; add known-good images or raise --alpha")
+    if calibration.method == "analytic":
+        _warn(args, "textbook limits from the reference's training eigenvalues: with far "
+                    "more pixels than images they flag too many good frames")
+
+
 def _cmd_screen(args):
-    from ._files import write_image, write_text
+    from ._files import write_image
     from .basis import fit_basis
     from .ingest import find_images
-    from .plots import plot_control_chart, residual_overlay, save_figure
+    from .plots import residual_overlay
     from .screen import (CAUTION, Calibration, calibrate, calibrate_on_batch,
                          screen_batch)
 
@@ -594,79 +678,14 @@ def _cmd_screen(args):
         basis.save(save_to)
         written.append(str(save_to))
     if out is not None:
-        def fmt(pair):
-            return "" if pair is None else " ".join(str(v) for v in pair)
-
-        csv_path = out / "screen.csv"
-        _write_csv(csv_path, ["path", "q", "q_limit", "t2", "t2_limit", "local", "local_limit",
-                              "flagged", "reasons", "peak", "box", "shift", "shift_d2",
-                              "shift_limit"],
-                   [[r["path"], _finite(r["q"], 6), _finite(limits["q_limit"], 6),
-                     _finite(r["t2"], 4), _finite(limits["t2_limit"], 4),
-                     _finite(r["local"], 3), _finite(limits["local_limit"], 3),
-                     int(bool(r["reasons"])), ";".join(r["reasons"]), fmt(r["peak"]),
-                     fmt(r["box"]), fmt(r["shift"]), _finite(r["shift_d2"], 3),
-                     _finite(limits["shift_limit"], 3)] for r in rows])
-        written.append(str(csv_path))
-        fig = plot_control_chart([r["q"] for r in rows], [r["t2"] for r in rows],
-                                 [r["local"] for r in rows], limits,
-                                 shift=([r["shift_d2"] for r in rows] if calibration.align
-                                        else None),
-                                 flagged=[bool(r["reasons"]) for r in rows],
-                                 title=f"{n_flagged} of {len(rows)} images flagged "
-                                       f"(alpha {args.alpha:g}, rank {calibration.rank}, "
-                                       f"mode {mode})", note=CAUTION)
-        chart = out / "control_chart.png"
-        save_figure(fig, chart)
-        written.append(str(chart))
+        written += _write_screen_files(args, out, rows, calibration, mode, n_flagged)
         if maps_done[0]:
             written.append(str(overlay_dir))
-        summary = out / "summary.txt"
-        write_text(summary, "\n".join([
-            f"imgreduce {__version__} screen: {len(rows)} images, {n_flagged} flagged",
-            f"mode: {mode} (limits: {calibration.method})",
-            f"alpha: {args.alpha:g} per good image (each of {len(calibration.statistics)} "
-            f"statistics at alpha/{len(calibration.statistics)})",
-            f"rank: {calibration.rank} ({calibration.details.get('rank_rule', 'stored')})",
-            f"q_limit: {limits['q_limit']:.6g}", f"t2_limit: {limits['t2_limit']:.6g}",
-            "local_limit: " + ("not used" if limits["local_limit"] is None
-                               else f"{limits['local_limit']:.6g}"),
-            "aligned: " + ("no" if not calibration.align else
-                           f"yes, shift_limit {limits['shift_limit']:.6g} (squared "
-                           "Mahalanobis distance from the reference frames' shifts)"),
-            "", CAUTION, ""]))
-        written.append(str(summary))
     if n_flagged and maps_done[0] < n_flagged and out is not None:
         _warn(args, f"overlays written for the first {maps_done[0]} of {n_flagged} flagged "
                     "images (raise --max-overlays for more)")
 
-    _say(args, f"screened {len(rows)} images ({mode} mode, limits {calibration.method}, "
-               f"rank {calibration.rank}, alpha {args.alpha:g}): {n_flagged} flagged")
-    shown = [r for r in rows if r["reasons"]][:20]
-    for r in shown:
-        ratio = {"Q": r["q"] / limits["q_limit"], "T2": r["t2"] / limits["t2_limit"],
-                 "local": (r["local"] / limits["local_limit"]) if limits["local_limit"]
-                 else float("nan"),
-                 "shift": (r["shift_d2"] / limits["shift_limit"]) if limits["shift_limit"]
-                 else float("nan")}
-        why = ", ".join(f"{k} {ratio[k]:.1f}x limit" for k in r["reasons"])
-        moved = (f"; moved {r['shift'][0]:+.2f}, {r['shift'][1]:+.2f} px (rows, cols) to "
-                 "align" if r["shift"] is not None else "")
-        _say(args, f"  {r['path']}: {why}; peak row {r['peak'][0]} col {r['peak'][1]}, "
-                   f"box rows {r['box'][0]}-{r['box'][2] - 1} cols {r['box'][1]}-"
-                   f"{r['box'][3] - 1}{moved}")
-    if n_flagged > len(shown):
-        _say(args, f"  ... and {n_flagged - len(shown)} more"
-                   + (f" (see {out / 'screen.csv'})" if out else " (use -o DIR for the CSV)"))
-    if calibration.method == "heldout" and calibration.details.get("level") == "parametric":
-        need = math.ceil(1 / args.alpha - 1)
-        _warn(args, f"{calibration.details.get('reference_images')} reference images are too "
-                    f"few to set the limits' level at alpha {args.alpha:g} (that needs "
-                    f"{need}): plain Box/Gumbel limits are used, and good frames may be "
-                    "flagged at 2-3 times alpha; add known-good images or raise --alpha")
-    if calibration.method == "analytic":
-        _warn(args, "textbook limits from the reference's training eigenvalues: with far "
-                    "more pixels than images they flag too many good frames")
+    _say_screen(args, rows, calibration, mode, out, n_flagged)
     for path in written:
         _say(args, f"wrote {path}")
     _say(args, CAUTION)
